@@ -1,0 +1,79 @@
+"""Accurate per-group mean and variance: corrected two-pass reduction.
+
+For a group x_1..x_n the first pass gives m0 = fl(sum(x) / n). The second pass
+forms d_i = x_i - m0 (exact by Sterbenz's lemma when x_i is within a factor 2
+of m0, i.e. whenever cancellation is a risk) and the correction
+c = sum(d) / n. The mean is carried as the unevaluated pair (m0, c), so that
+x_i - mean = d_i - c keeps the bits that a single float64 mean would lose
+when |mean| >> spread. The variance uses the corrected two-pass formula
+
+    M2 = sum(d_i^2) - (sum d_i)^2 / n,    var = M2 / (n - ddof)
+
+(Chan, Golub & LeVeque 1983, "Algorithms for computing the sample variance",
+eq. 1.7, from memory; Higham 2002, Accuracy and Stability of Numerical
+Algorithms, §1.9). No one-pass E[x^2] - E[x]^2 anywhere.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Moments:
+    """Per-group statistics with keepdims shapes.
+
+    The mean is the unevaluated pair ``m0 + c`` (about twice float64
+    precision); ``dev = x - m0`` is kept because every later pass needs it;
+    ``m2`` is the corrected sum of squared deviations; ``n`` the group length.
+    """
+
+    m0: np.ndarray
+    c: np.ndarray
+    dev: np.ndarray
+    m2: np.ndarray
+    n: int
+
+    @property
+    def mean(self) -> np.ndarray:
+        """The mean rounded once to float64."""
+        return self.m0 + self.c
+
+    def var(self, ddof: int = 0) -> np.ndarray:
+        """M2 / (n - ddof): biased for ddof=0, unbiased (Bessel) for ddof=1."""
+        return self.m2 / (self.n - ddof)
+
+    def centered(self) -> np.ndarray:
+        """x - mean evaluated as (x - m0) - c, keeping the low part of the mean."""
+        return self.dev - self.c
+
+
+def group_size(shape: tuple[int, ...], axes: tuple[int, ...]) -> int:
+    n = 1
+    for a in axes:
+        n *= shape[a]
+    return n
+
+
+def moments(x: np.ndarray, axes: tuple[int, ...]) -> Moments:
+    """Corrected two-pass moments of float64 ``x`` over canonical ``axes`` (keepdims)."""
+    n = group_size(x.shape, axes)
+    m0 = np.sum(x, axis=axes, keepdims=True)
+    m0 /= n
+    dev = x - m0
+    s1 = np.sum(dev, axis=axes, keepdims=True)
+    c = s1 / n
+    s2 = np.sum(np.square(dev), axis=axes, keepdims=True)
+    # s1 * c is tiny next to s2 unless m0 was poor; it is never clamped.
+    m2 = s2 - s1 * c
+    return Moments(m0=m0, c=c, dev=dev, m2=m2, n=n)
+
+
+def mean_square(x: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
+    """mean(x^2) over ``axes`` (keepdims); a sum of non-negative terms needs no correction."""
+    n = group_size(x.shape, axes)
+    s = np.sum(np.square(x), axis=axes, keepdims=True)
+    s /= n
+    return s

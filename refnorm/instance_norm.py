@@ -1,0 +1,150 @@
+"""Instance normalization: group normalization with one channel per group, optionally with running statistics."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from . import _core
+from ._validate import (
+    MOMENTUM_CONVENTIONS,
+    VAR_ESTIMATORS,
+    as_float64,
+    check_choice,
+    check_momentum,
+    check_reduction_length,
+    check_same_shape,
+    param,
+)
+from .errors import RefnormError
+from .group_norm import _setup
+from .results import NormBackward, NormForward
+from .running import _update
+
+__all__ = ["instance_norm_forward", "instance_norm_backward"]
+
+
+def _channels(x: Any, axis: int) -> int:
+    xf = np.asarray(x)
+    if xf.ndim < 2:
+        raise RefnormError(f"x has rank {xf.ndim} (shape {xf.shape}), expected rank >= 2")
+    return xf.shape[axis]
+
+
+def instance_norm_forward(
+    x: Any,
+    weight: Any = None,
+    bias: Any = None,
+    *,
+    axis: int = 1,
+    eps: float = 1e-5,
+    training: bool = True,
+    running_mean: Any = None,
+    running_var: Any = None,
+    momentum: float | None = 0.1,
+    momentum_convention: str = "new",
+    running_var_estimator: str = "unbiased",
+    batches_seen: int | None = None,
+    eps_placement: str = "inside",
+) -> NormForward:
+    """Instance normalization forward, in float64 (Ulyanov, Vedaldi & Lempitsky 2016, eq. 2).
+
+    For each sample n and channel c, mean and biased var over the spatial axes;
+    y = (x - mean) / sqrt(var + eps) * weight_c + bias_c. Equal to
+    :func:`refnorm.group_norm_forward` with num_groups = C.
+
+    Running statistics (torch's InstanceNorm with track_running_stats, from memory):
+    in training mode each channel's running value is updated with the batch
+    average over n of the per-instance mean and of the per-instance variance
+    (estimator per ``running_var_estimator``); with ``training=False`` every
+    instance is normalized with the running statistics.
+
+    Returns NormForward with mean, var, rstd of shape (N, C).
+    """
+    c = _channels(x, axis)
+    xf, plan, eps = _setup(x, c, axis, eps, eps_placement)
+    check_choice("momentum_convention", momentum_convention, MOMENTUM_CONVENTIONS)
+    check_choice("running_var_estimator", running_var_estimator, VAR_ESTIMATORS)
+    what = f"one value per channel along axis {plan.axis} of x"
+    w = param("weight", weight, (c,), what)
+    b = param("bias", bias, (c,), what)
+    rm = param("running_mean", running_mean, (c,), what)
+    rv = param("running_var", running_var, (c,), what)
+    if (rm is None) != (rv is None):
+        raise RefnormError("running_mean and running_var must be given together (or neither)")
+    xv = plan.view(xf)
+    pv = plan.param_view
+    ss = (plan.shape[0], c)
+    if not training:
+        if rm is None:
+            raise RefnormError(f"running_mean and running_var are None, expected arrays of shape ({c},) "
+                               "in eval mode (training=False)")
+        st = _core.fixed_stats(rm.reshape(pv), rv.reshape(pv), eps, eps_placement)
+    else:
+        st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=True)
+    y = _core.affine(_core.normalized(xv, st), None if w is None else w.reshape(pv),
+                     None if b is None else b.reshape(pv))
+    mean = np.broadcast_to(st.mean, np.broadcast_shapes(st.mean.shape, plan.stat_view)).reshape(ss)
+    var = np.broadcast_to(st.var, np.broadcast_shapes(st.var.shape, plan.stat_view)).reshape(ss)
+    rstd = np.broadcast_to(st.rstd, np.broadcast_shapes(st.rstd.shape, plan.stat_view)).reshape(ss)
+    new_rm, new_rv = rm, rv
+    if training and rm is not None:
+        mom, seen = check_momentum(momentum, batches_seen)
+        check_reduction_length(st.moments.n, running_var_estimator, "instance_norm_forward")
+        ddof = 1 if running_var_estimator == "unbiased" else 0
+        inst_var = st.moments.var(ddof).reshape(ss)
+        new_rm = _update(rm, mean.mean(axis=0), mom, momentum_convention, seen)
+        new_rv = _update(rv, inst_var.mean(axis=0), mom, momentum_convention, seen)
+    return NormForward(y=plan.unview(y), mean=mean.copy(), var=var.copy(), rstd=rstd.copy(),
+                       running_mean=new_rm, running_var=new_rv)
+
+
+def instance_norm_backward(
+    dy: Any,
+    x: Any,
+    weight: Any = None,
+    *,
+    axis: int = 1,
+    eps: float = 1e-5,
+    training: bool = True,
+    mean: Any = None,
+    rstd: Any = None,
+    running_mean: Any = None,
+    running_var: Any = None,
+    eps_placement: str = "inside",
+) -> NormBackward:
+    """Instance normalization backward, in float64.
+
+    Training: the group-norm gradient with one channel per group. Eval with
+    running statistics: dx = dy * weight_c * r_c. dweight, dbias of shape (C,).
+    Saved ``mean``/``rstd`` have shape (N, C).
+    """
+    c = _channels(x, axis)
+    xf, plan, eps = _setup(x, c, axis, eps, eps_placement)
+    dyf = as_float64("dy", dy)
+    check_same_shape("dy", dyf, "x", xf)
+    what = f"one value per channel along axis {plan.axis} of x"
+    w = param("weight", weight, (c,), what)
+    pv = plan.param_view
+    ss = (plan.shape[0], c)
+    xv = plan.view(xf)
+    if not training:
+        rm = param("running_mean", running_mean, (c,), what)
+        rv = param("running_var", running_var, (c,), what)
+        if rm is None or rv is None:
+            raise RefnormError(f"running_mean and running_var are None, expected arrays of shape ({c},) in eval mode")
+        st = _core.fixed_stats(rm.reshape(pv), rv.reshape(pv), eps, eps_placement)
+    else:
+        sm = param("mean", mean, ss, "one value per sample and channel")
+        sr = param("rstd", rstd, ss, "one value per sample and channel")
+        if (sm is None) != (sr is None):
+            raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
+        st = _core.stats_for_backward(
+            xv, plan.red, None if sm is None else sm.reshape(plan.stat_view),
+            None if sr is None else sr.reshape(plan.stat_view), eps=eps, placement=eps_placement, center=True)
+    xhat = _core.normalized(xv, st)
+    dx, dw, db = _core.backward(plan.view(dyf), xhat, st, plan.red, None if w is None else w.reshape(pv),
+                                plan.param_red, eps=eps, placement=eps_placement, center=True,
+                                training=training)
+    return NormBackward(dx=plan.unview(dx), dweight=dw.reshape(c), dbias=db.reshape(c))

@@ -1,0 +1,79 @@
+"""RMS normalization: scale by the root mean square over the feature axes, no centering."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from . import _core
+from ._features import check_param, check_stat, feature_plan
+from ._validate import EPS_PLACEMENTS, as_float64, check_choice, check_eps, check_nonempty, check_same_shape
+from .results import NormBackward, NormForward
+
+__all__ = ["rms_norm_forward", "rms_norm_backward"]
+
+
+def rms_norm_forward(
+    x: Any,
+    normalized_shape: Any = None,
+    weight: Any = None,
+    bias: Any = None,
+    *,
+    axes: Any = None,
+    eps: float = 1e-6,
+    eps_placement: str = "inside",
+) -> NormForward:
+    """RMS normalization forward, in float64 (Zhang & Sennrich 2019, eq. 4).
+
+    y = x / sqrt(mean(x^2) + eps) * weight (+ bias, rarely used), the mean square
+    over the normalized axes (trailing ``normalized_shape`` or explicit ``axes``).
+    eps: 1e-6 is common practice (T5, LLaMA: from memory); torch's RMSNorm with
+    eps=None uses finfo(dtype).eps (from memory).
+
+    Returns NormForward with mean=None, var = mean(x^2), rstd = 1/sqrt(var + eps).
+    """
+    xf = as_float64("x", x)
+    check_nonempty("x", xf)
+    eps = check_eps(eps)
+    check_choice("eps_placement", eps_placement, EPS_PLACEMENTS)
+    plan = feature_plan(xf.shape, normalized_shape, axes)
+    w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
+    b = check_param("bias", None if bias is None else as_float64("bias", bias), plan)
+    xv = xf.reshape(plan.view)
+    st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=False)
+    y = _core.affine(_core.normalized(xv, st), w, b)
+    ss = plan.stat_shape
+    return NormForward(y=y.reshape(xf.shape), mean=None, var=st.var.reshape(ss), rstd=st.rstd.reshape(ss))
+
+
+def rms_norm_backward(
+    dy: Any,
+    x: Any,
+    normalized_shape: Any = None,
+    weight: Any = None,
+    *,
+    axes: Any = None,
+    eps: float = 1e-6,
+    rstd: Any = None,
+    eps_placement: str = "inside",
+) -> NormBackward:
+    """RMS normalization backward, in float64.
+
+    Per row, with xhat = x r and g = dy * weight:  dx = r g - r xhat mean(g xhat);
+    dweight = sum over rows of dy * xhat, dbias = sum over rows of dy.
+    """
+    xf = as_float64("x", x)
+    dyf = as_float64("dy", dy)
+    check_nonempty("x", xf)
+    check_same_shape("dy", dyf, "x", xf)
+    eps = check_eps(eps)
+    check_choice("eps_placement", eps_placement, EPS_PLACEMENTS)
+    plan = feature_plan(xf.shape, normalized_shape, axes)
+    w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
+    sr = check_stat("rstd", None if rstd is None else as_float64("rstd", rstd), plan)
+    xv = xf.reshape(plan.view)
+    st = _core.stats_for_backward(xv, plan.red, None, sr, eps=eps, placement=eps_placement, center=False)
+    xhat = _core.normalized(xv, st)
+    dx, dw, db = _core.backward(dyf.reshape(plan.view), xhat, st, plan.red, w, plan.param_red,
+                                eps=eps, placement=eps_placement, center=False, training=True)
+    return NormBackward(dx=dx.reshape(xf.shape), dweight=dw.reshape(plan.param_shape),
+                        dbias=db.reshape(plan.param_shape))
