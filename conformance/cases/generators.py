@@ -1,0 +1,164 @@
+"""Inputs of a case, generated deterministically in float64 and rounded once to the kernel's dtypes."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+
+from .. import dtypes
+from ..kernel import Precision
+from .model import Case
+
+__all__ = ["make_inputs", "group_index", "CANCELLATION"]
+
+#: (mean, spread) of "cancellation" values per storage format: the mean is many
+#: spreads away (condition number kappa = sqrt(1 + mean^2/var) of the variance,
+#: Chan, Golub & LeVeque 1983), while the spread still covers several ULPs of the mean.
+CANCELLATION = {
+    "float64": (1e8, 1e-2),
+    "float32": (1e4, 1e-1),
+    "float16": (2000.0, 8.0),
+    "bfloat16": (1000.0, 16.0),
+    "float8_e4m3fn": (64.0, 8.0),
+    "float8_e5m2": (256.0, 64.0),
+}
+
+
+def group_index(case: Case) -> np.ndarray:
+    """For every element of x (logical shape), the index of its normalization statistic."""
+    shape = case.shape
+    idx = np.indices(shape, sparse=True)
+    if case.op in ("layer_norm", "rms_norm"):
+        lead = shape[: len(shape) - case.norm_ndim]
+        flat = np.ravel_multi_index(tuple(np.broadcast_arrays(*idx[: len(lead)])), lead) if lead else 0
+        return np.broadcast_to(flat, shape)
+    ca = case.channel_axis
+    c = np.broadcast_to(idx[ca], shape)
+    n = np.broadcast_to(idx[0], shape)
+    if case.op == "batch_norm":
+        return c
+    if case.op == "instance_norm":
+        return n * case.channels + c
+    cg = case.channels // case.groups
+    return n * case.groups + c // cg
+
+
+def _values(case: Case, rng: np.random.Generator) -> np.ndarray:
+    shape, dt = case.shape, case.dtype
+    kind = case.values
+    if kind == "normal":
+        return rng.standard_normal(shape)
+    if kind == "cancellation":
+        m, s = CANCELLATION[dt]
+        return m + s * rng.standard_normal(shape)
+    if kind == "constant":
+        gi = group_index(case)
+        per_group = rng.uniform(-3.0, 3.0, size=int(gi.max()) + 1)
+        return per_group[gi].copy()
+    if kind == "heavy_tail":
+        cap = 0.25 * float(dtypes.finfo(dt).max) if dt in ("float16", "float8_e4m3fn", "float8_e5m2") else 1e6
+        return np.clip(rng.standard_t(2.0, size=shape), -cap, cap)
+    if kind == "near_overflow":
+        big = float(dtypes.finfo(dt).max)
+        return rng.choice([-1.0, 1.0], size=shape) * rng.uniform(0.5, 0.95, size=shape) * big
+    if kind == "subnormal":
+        tiny = float(dtypes.finfo(dt).smallest_normal)
+        return rng.uniform(-1.0, 1.0, size=shape) * tiny
+    if kind == "zeros":
+        return np.zeros(shape)
+    if kind == "nonfinite":
+        x = rng.standard_normal(shape)
+        flat = x.reshape(-1)
+        k = flat.size
+        pos = rng.choice(k, size=min(3, k), replace=False)
+        for p, v in zip(pos, (np.nan, np.inf, -np.inf)):
+            flat[p] = v
+        return x
+    raise ValueError(f"unknown value kind {kind!r}")
+
+
+def _param(kind: str, shape: tuple[int, ...], rng: np.random.Generator, role: str) -> np.ndarray | None:
+    if kind == "none":
+        return None
+    if kind == "zero":
+        return np.zeros(shape)
+    if kind == "ones":
+        return np.ones(shape)
+    if kind == "negative":
+        return -(0.5 + np.abs(rng.standard_normal(shape)))
+    if kind == "random":
+        return (1.0 + 0.5 * rng.standard_normal(shape)) if role == "weight" else 0.5 * rng.standard_normal(shape)
+    raise ValueError(f"unknown parameter kind {kind!r}")
+
+
+def _layout(a: np.ndarray, strides: str) -> np.ndarray:
+    """The same logical array, laid out in memory as the case asks."""
+    if strides == "contiguous":
+        return np.ascontiguousarray(a)
+    if strides == "transposed":
+        rev = tuple(reversed(range(a.ndim)))
+        return np.ascontiguousarray(a.transpose(rev)).transpose(rev)
+    if strides == "sliced":
+        buf = np.zeros(a.shape[:-1] + (2 * a.shape[-1],), dtype=a.dtype)
+        buf[..., ::2] = a
+        return buf[..., ::2]
+    if strides == "reversed":
+        flip = (slice(None, None, -1),) * a.ndim
+        return np.ascontiguousarray(a[flip])[flip]
+    if strides == "channels_last_memory":
+        perm = (0,) + tuple(range(2, a.ndim)) + (1,)
+        inv = np.argsort(perm)
+        return np.ascontiguousarray(a.transpose(perm)).transpose(inv)
+    raise ValueError(f"unknown stride kind {strides!r}")
+
+
+def _param_shape(case: Case) -> tuple[int, ...]:
+    return case.normalized_shape if case.op in ("layer_norm", "rms_norm") else (case.channels,)
+
+
+def _running(case: Case, x: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Running statistics near the data's own (so eval-mode outputs stay O(1)), per channel."""
+    c = case.channels
+    ax = case.channel_axis
+    xm = np.moveaxis(np.where(np.isfinite(x), x, 0.0), ax, 0).reshape(c, -1)
+    mean = xm.mean(axis=1)
+    var = xm.var(axis=1)
+    scale = np.sqrt(var) + 1e-3
+    rm = mean + 0.1 * scale * rng.standard_normal(c)
+    rv = var * rng.uniform(0.8, 1.25, size=c) + 0.05 * scale**2
+    return rm, rv
+
+
+def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
+    """x, dy, weight, bias, running_mean, running_var for the case, in the kernel's dtypes.
+
+    x and dy are in the storage dtype, laid out per ``case.strides``; parameters and
+    running statistics in the params dtype. Values are drawn in float64 and rounded
+    once (round to nearest even, via ml_dtypes/NumPy casts).
+    """
+    p = replace(precision, storage=case.dtype).resolved()
+    rng = np.random.default_rng(case.seed_for(seed))
+    x64 = _values(case, rng)
+    dy64 = rng.standard_normal(case.shape)
+    ps = _param_shape(case)
+    w64 = _param(case.weight, ps, rng, "weight")
+    b64 = _param(case.bias, ps, rng, "bias")
+    st = dtypes.dtype_of(p.storage)
+    pt = dtypes.dtype_of(p.params)
+    x = _layout(x64.astype(st), case.strides)
+    dy = _layout(dy64.astype(st), case.strides)
+    out: dict[str, Any] = {
+        "x": x,
+        "dy": dy,
+        "weight": None if w64 is None else w64.astype(pt),
+        "bias": None if b64 is None else b64.astype(pt),
+        "running_mean": None,
+        "running_var": None,
+    }
+    if case.op in ("batch_norm", "instance_norm") and (case.mode == "eval" or case.running):
+        rm, rv = _running(case, x.astype(np.float64), rng)
+        out["running_mean"] = rm.astype(pt)
+        out["running_var"] = rv.astype(pt)
+    return out

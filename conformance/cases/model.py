@@ -1,0 +1,123 @@
+"""One conformance case: a fully specified, reproducible call of a normalization op."""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from dataclasses import asdict, dataclass
+
+__all__ = ["Case", "TIERS", "VALUE_KINDS", "STRIDE_KINDS"]
+
+TIERS = ("smoke", "standard", "exhaustive")
+VALUE_KINDS = (
+    "normal",        # standard normal
+    "cancellation",  # large mean, small spread (per dtype, see generators)
+    "constant",      # every normalization group constant: zero variance
+    "heavy_tail",    # Student t with 2 degrees of freedom
+    "near_overflow", # magnitudes near the storage format's largest finite value
+    "subnormal",     # magnitudes in the storage format's subnormal range
+    "zeros",         # exact zeros
+    "nonfinite",     # normal values with a few NaN and +-Inf
+)
+STRIDE_KINDS = ("contiguous", "transposed", "sliced", "reversed", "channels_last_memory")
+
+
+@dataclass(frozen=True)
+class Case:
+    """A case of the catalog. Every field is part of the id, so the id reproduces the case.
+
+    shape : the logical shape of x in its layout: (N, C, *spatial) for channels_first,
+        (N, *spatial, C) for channels_last, (*batch, *normalized) for layer/RMS norm.
+    layout : "channels_first" | "channels_last" (batch/group/instance norm); "trailing"
+        (layer/RMS norm: the last ``norm_ndim`` axes are normalized).
+    strides : how x (and dy) are laid out in memory: "contiguous", "transposed" (a
+        C-contiguous buffer of another axis order, viewed back), "sliced" (every other
+        element of a larger buffer along the last axis), "reversed" (negative strides on
+        every axis), "channels_last_memory" (logical (N, C, *spatial) stored with C
+        fastest, as torch's channels_last memory format).
+    mode : "train" | "eval" (eval: batch/instance norm with running statistics).
+    running : train mode also updates running statistics.
+    """
+
+    op: str
+    dtype: str
+    shape: tuple[int, ...]
+    layout: str
+    values: str = "normal"
+    weight: str = "random"      # none | random | ones | zero | negative
+    bias: str = "random"        # none | random | zero
+    eps: float = 1e-5
+    mode: str = "train"
+    running: bool = False
+    momentum: float | None = 0.1
+    batches_seen: int = 0
+    strides: str = "contiguous"
+    groups: int = 0             # group norm only
+    norm_ndim: int = 0          # layer/RMS norm only
+    tier: str = "standard"
+
+    @property
+    def id(self) -> str:
+        """Readable stable id: op/dtype/layout/shape/values/w=/b=/eps=/mode[/momentum]/strides."""
+        parts = [self.op, self.dtype, self.layout, "x".join(map(str, self.shape))]
+        if self.op == "group_norm":
+            parts.append(f"groups={self.groups}")
+        if self.norm_ndim:
+            parts.append(f"norm_ndim={self.norm_ndim}")
+        parts += [self.values, f"w={self.weight}", f"b={self.bias}", f"eps={self.eps:g}", self.mode]
+        if self.running and self.mode == "train":
+            m = "cumulative" if self.momentum is None else f"{self.momentum:g}"
+            parts.append(f"momentum={m}" + (f",seen={self.batches_seen}" if self.momentum is None else ""))
+        parts.append(self.strides)
+        return "/".join(parts)
+
+    @property
+    def channel_axis(self) -> int:
+        return 1 if self.layout == "channels_first" else len(self.shape) - 1
+
+    @property
+    def channels(self) -> int:
+        return self.shape[self.channel_axis]
+
+    @property
+    def normalized_shape(self) -> tuple[int, ...]:
+        return tuple(self.shape[len(self.shape) - self.norm_ndim:])
+
+    @property
+    def numel(self) -> int:
+        return math.prod(self.shape)
+
+    @property
+    def group_length(self) -> int:
+        """Elements per normalization statistic (the reduction length n of the forward pass)."""
+        if self.op in ("layer_norm", "rms_norm"):
+            return math.prod(self.normalized_shape)
+        if self.op == "batch_norm":
+            return self.numel // self.channels
+        if self.op == "instance_norm":
+            return self.numel // (self.shape[0] * self.channels)
+        return self.numel // (self.shape[0] * self.groups)
+
+    @property
+    def param_length(self) -> int:
+        """Terms in each dweight/dbias sum (the reduction length of the parameter gradients)."""
+        if self.op in ("layer_norm", "rms_norm"):
+            return self.numel // math.prod(self.normalized_shape)
+        return self.numel // self.channels
+
+    def seed_for(self, base_seed: int) -> int:
+        """A 63-bit seed from the run's seed and the id: the same case gives the same data."""
+        h = hashlib.sha256(f"{base_seed}:{self.id}".encode()).digest()
+        return int.from_bytes(h[:8], "little") >> 1
+
+    def as_dict(self) -> dict:
+        d = asdict(self)
+        d["shape"] = list(self.shape)
+        d["id"] = self.id
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Case":
+        fields = {k: v for k, v in d.items() if k in cls.__dataclass_fields__}
+        fields["shape"] = tuple(fields["shape"])
+        return cls(**fields)

@@ -1,0 +1,89 @@
+"""Number formats by name: NumPy dtypes (ml_dtypes for bfloat16 and float8), unit roundoff, ULP distance."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["FORMATS", "dtype_of", "name_of", "unit_roundoff", "round_to", "ulp_distance", "finfo"]
+
+FORMATS = ("float64", "float32", "float16", "bfloat16", "float8_e4m3fn", "float8_e5m2")
+
+
+def _ml():
+    try:
+        import ml_dtypes
+    except ImportError as e:  # pragma: no cover - ml_dtypes is a harness dependency
+        raise ImportError("bfloat16/float8 need the ml_dtypes package: pip install ml_dtypes") from e
+    return ml_dtypes
+
+
+def dtype_of(name: str) -> np.dtype:
+    """The NumPy dtype of a format name (e.g. "bfloat16" -> ml_dtypes.bfloat16)."""
+    if name in ("float64", "float32", "float16"):
+        return np.dtype(name)
+    if name in FORMATS:
+        return np.dtype(getattr(_ml(), name))
+    raise ValueError(f"unknown number format {name!r}, expected one of {', '.join(FORMATS)}")
+
+
+def name_of(dtype) -> str:
+    """The format name of a NumPy dtype."""
+    dt = np.dtype(dtype)
+    for n in FORMATS:
+        if dtype_of(n) == dt:
+            return n
+    raise ValueError(f"dtype {dt} is not a floating format refnorm knows ({', '.join(FORMATS)})")
+
+
+def finfo(name: str):
+    """np.finfo for NumPy's formats, ml_dtypes.finfo for the others."""
+    if name in ("float64", "float32", "float16"):
+        return np.finfo(name)
+    return _ml().finfo(dtype_of(name))
+
+
+def unit_roundoff(name: str) -> float:
+    """u = 2^-p for a format with p significand bits (implicit bit included), round to nearest.
+
+    float64 2^-53, float32 2^-24 (IEEE 754-2019 binary64/binary32), float16 2^-11
+    (IEEE 754-2019 binary16), bfloat16 2^-8 (8 significand bits: Google's bfloat16
+    definition; Intel BF16 whitepaper 2018), float8_e4m3fn 2^-4, float8_e5m2 2^-3
+    (Micikevicius et al. 2022, "FP8 formats for deep learning").
+    """
+    return float(finfo(name).eps) / 2.0
+
+
+def round_to(a: np.ndarray, name: str) -> np.ndarray:
+    """Round to nearest (ties to even) into the format: NumPy's/ml_dtypes' astype."""
+    return np.asarray(a).astype(dtype_of(name))
+
+
+_INT = {1: np.int8, 2: np.int16, 4: np.int32, 8: np.int64}
+_UINT = {1: np.uint8, 2: np.uint16, 4: np.uint32, 8: np.uint64}
+
+
+def _ordinal(a: np.ndarray) -> np.ndarray:
+    """Map floats to integers so that adjacent representable values differ by 1 (+0 and -0 both map to 0)."""
+    size = a.dtype.itemsize
+    bits = a.view(_UINT[size]).astype(np.int64) if size < 8 else a.view(np.int64)
+    sign_bit = 1 << (8 * size - 1)
+    mag = bits & (sign_bit - 1) if size < 8 else bits & np.int64(0x7FFFFFFFFFFFFFFF)
+    neg = (bits & sign_bit) != 0 if size < 8 else bits < 0
+    return np.where(neg, -mag, mag).astype(np.int64)
+
+
+def ulp_distance(a: np.ndarray, b: np.ndarray, name: str) -> np.ndarray:
+    """Number of representable values of format ``name`` between a and b, both first rounded to it.
+
+    0 means equal after rounding; NaN positions give -1 (no distance is defined).
+    The distance counts steps along the format's ordered values (IEEE 754-2019 §2.1's
+    ULP as the gap between consecutive values), across zero too.
+    """
+    dt = dtype_of(name)
+    ra = np.asarray(a).astype(dt)
+    rb = np.asarray(b).astype(dt)
+    ia = _ordinal(np.ascontiguousarray(ra))
+    ib = _ordinal(np.ascontiguousarray(rb))
+    d = np.abs(ia - ib)
+    nan = np.isnan(ra.astype(np.float64)) | np.isnan(rb.astype(np.float64))
+    return np.where(nan, -1, d)

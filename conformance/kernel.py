@@ -1,0 +1,325 @@
+"""The declaration of a kernel under test: what it computes, in which precision, with which conventions.
+
+A kernel is a set of plain callables on arrays in the kernel's own dtype. The
+harness calls each with keyword arguments only (see docs/kernel-interface.md);
+arguments a callable does not name are not passed unless it takes ``**kwargs``.
+"""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+import inspect
+import sys
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any, Callable, Mapping
+
+from . import dtypes
+
+__all__ = [
+    "OPS",
+    "ENTRY_POINTS",
+    "SUMMATION_MODELS",
+    "SAVED_FORMS",
+    "Precision",
+    "Conventions",
+    "Kernel",
+    "KernelError",
+    "load_kernel",
+]
+
+OPS = ("batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm")
+ENTRY_POINTS = ("forward", "forward_eval", "backward", "backward_eval")
+SUMMATION_MODELS = ("probabilistic", "pairwise", "worst")
+#: Forms of the saved dispersion statistic: rstd = 1/sqrt(var+eps), var (biased),
+#: var_unbiased (M2/(n-1), what TF's fused_batch_norm returns), std = sqrt(var+eps).
+SAVED_FORMS = ("rstd", "var", "var_unbiased", "std")
+LAYOUTS = ("channels_first", "channels_last")
+RUNNING_STYLES = ("return", "inplace")
+_RUNNING_OPS = ("batch_norm", "instance_norm")
+
+
+class KernelError(ValueError):
+    """A kernel declaration or spec that cannot be used; the message says what is wrong."""
+
+
+@dataclass(frozen=True)
+class Precision:
+    """How a kernel stores and accumulates, for one storage dtype.
+
+    storage : dtype of x, y, dy and dx (the case's dtype).
+    params : dtype of weight, bias, running and saved statistics, dweight and dbias
+        (mixed precision: e.g. float16 storage with float32 params). None: the storage dtype.
+    accumulate : dtype of sums and of the arithmetic on statistics. None: float32 for
+        formats narrower than float32 (common practice), else the storage dtype.
+    summation : error model of the kernel's sums: "probabilistic" (Higham & Mary 2019,
+        error ~ lambda sqrt(n) u; the default), "pairwise" (ceil(log2 n) u, Higham 2002
+        §4.2) or "worst" (n u / (1 - n u), Higham 2002 §4.2, recursive summation).
+    lam : the probabilistic model's lambda (safety factor), see docs/tolerances.md.
+    output_accumulate : per-output accumulation dtype where a kernel differs, e.g.
+        {"dweight": "bfloat16", "dbias": "bfloat16"} for a kernel whose parameter
+        gradients are summed in bfloat16.
+    """
+
+    storage: str = "float32"
+    params: str | None = None
+    accumulate: str | None = None
+    summation: str = "probabilistic"
+    lam: float = 8.0
+    output_accumulate: Mapping[str, str] = field(default_factory=dict)
+
+    def resolved(self) -> "Precision":
+        """A copy with params and accumulate filled in."""
+        p = self.params or self.storage
+        if self.accumulate:
+            a = self.accumulate
+        elif dtypes.unit_roundoff(self.storage) > dtypes.unit_roundoff("float32"):
+            a = "float32"
+        else:
+            a = self.storage
+        return replace(self, params=p, accumulate=a, output_accumulate=dict(self.output_accumulate))
+
+    def accumulate_for(self, output: str) -> str:
+        return self.output_accumulate.get(output, self.accumulate or self.resolved().accumulate)
+
+    def as_dict(self) -> dict[str, Any]:
+        r = self.resolved()
+        return {f.name: (dict(getattr(r, f.name)) if f.name == "output_accumulate" else getattr(r, f.name))
+                for f in fields(r)}
+
+
+@dataclass(frozen=True)
+class Conventions:
+    """The conventions a kernel follows where libraries disagree (see docs/conventions.md).
+
+    momentum_convention : "new" (momentum weights the batch value: torch) or "old" (Keras).
+    running_var_estimator : "unbiased" (torch) or "biased" (Keras) for the running variance.
+    eps_placement : "inside" (1/sqrt(var + eps)) or "outside" (1/(sqrt(var) + eps)).
+    saved : names of the saved statistics that forward returns, from ("mean",) + SAVED_FORMS;
+        empty when it returns none. RMS norm has no mean.
+    running : "return" (forward returns running_mean, running_var) or "inplace"
+        (forward updates the running_mean and running_var arrays it is given).
+    """
+
+    momentum_convention: str = "new"
+    running_var_estimator: str = "unbiased"
+    eps_placement: str = "inside"
+    saved: tuple[str, ...] = ()
+    running: str = "return"
+
+    def as_dict(self) -> dict[str, Any]:
+        return {f.name: (list(getattr(self, f.name)) if f.name == "saved" else getattr(self, f.name))
+                for f in fields(self)}
+
+
+@dataclass(frozen=True)
+class Kernel:
+    """A kernel under test and its declaration.
+
+    forward(x, weight, bias, *, eps, ...) -> y | tuple in ``outputs`` order | dict
+    forward_eval(x, weight, bias, *, eps, running_mean, running_var, ...) -> y
+    backward(dy, x, weight, *, eps, <saved statistics>, ...) -> tuple in ``grads`` order | dict
+    backward_eval(dy, x, weight, *, eps, running_mean, running_var, ...) -> likewise
+
+    ``min_reduction`` is the shortest training-mode reduction the kernel accepts
+    (torch refuses one value per channel in batch norm: 2); shorter cases are skipped.
+    ``strided=False`` skips cases with non-contiguous inputs; ``optional_params=False``
+    skips cases without weight or bias; ``momentum_none=False`` skips cumulative-average
+    cases; ``updates_running=False`` leaves running statistics unchecked.
+
+    ``outputs`` names what forward returns, in order: "y", then any of the saved
+    statistics in ``conventions.saved``, then "running_mean", "running_var" when
+    ``conventions.running == "return"``. ``grads`` is a subset of (dx, dweight, dbias).
+    ``precision`` maps each supported storage dtype to its Precision (a single
+    Precision applies to every dtype in ``dtypes``).
+    """
+
+    name: str
+    op: str
+    forward: Callable | None = None
+    forward_eval: Callable | None = None
+    backward: Callable | None = None
+    backward_eval: Callable | None = None
+    outputs: tuple[str, ...] = ("y",)
+    grads: tuple[str, ...] = ("dx", "dweight", "dbias")
+    dtypes: tuple[str, ...] = ("float32",)
+    layouts: tuple[str, ...] = LAYOUTS
+    strided: bool = True
+    optional_params: bool = True
+    momentum_none: bool = True
+    updates_running: bool = True
+    min_reduction: int = 1
+    conventions: Conventions = field(default_factory=Conventions)
+    precision: Any = None
+    notes: str = ""
+
+    def __post_init__(self) -> None:
+        _validate(self)
+
+    @property
+    def entry_points(self) -> tuple[str, ...]:
+        return tuple(e for e in ENTRY_POINTS if getattr(self, e) is not None)
+
+    def precision_for(self, dtype: str) -> Precision:
+        """The resolved Precision for storage ``dtype``."""
+        p = self.precision
+        if p is None:
+            return Precision(storage=dtype).resolved()
+        if isinstance(p, Precision):
+            return replace(p, storage=dtype).resolved()
+        if dtype not in p:
+            raise KernelError(f"kernel {self.name!r} declares no precision for dtype {dtype!r}")
+        return replace(p[dtype], storage=dtype).resolved()
+
+    def declaration(self) -> dict[str, Any]:
+        """Everything a report must record about the kernel (JSON-ready)."""
+        return {
+            "name": self.name,
+            "op": self.op,
+            "entry_points": list(self.entry_points),
+            "outputs": list(self.outputs),
+            "grads": list(self.grads),
+            "dtypes": list(self.dtypes),
+            "layouts": list(self.layouts),
+            "strided": self.strided,
+            "optional_params": self.optional_params,
+            "momentum_none": self.momentum_none,
+            "updates_running": self.updates_running,
+            "min_reduction": self.min_reduction,
+            "conventions": self.conventions.as_dict(),
+            "precision": {d: self.precision_for(d).as_dict() for d in self.dtypes},
+            "notes": self.notes,
+        }
+
+
+def _validate(k: Kernel) -> None:
+    def bad(what: str) -> None:
+        raise KernelError(f"kernel {k.name!r}: {what}")
+
+    if k.op not in OPS:
+        bad(f"op is {k.op!r}, expected one of {', '.join(OPS)}")
+    if not k.entry_points:
+        bad("no entry point: give at least one of forward, forward_eval, backward, backward_eval")
+    for e in k.entry_points:
+        if not callable(getattr(k, e)):
+            bad(f"{e} is {type(getattr(k, e)).__name__}, expected a callable")
+    if k.op not in _RUNNING_OPS and (k.forward_eval or k.backward_eval):
+        bad(f"{k.op} has no eval mode; forward_eval/backward_eval are for batch_norm and instance_norm")
+    for d in k.dtypes:
+        if d not in dtypes.FORMATS:
+            bad(f"dtype {d!r} is not one of {', '.join(dtypes.FORMATS)}")
+    for lay in k.layouts:
+        if lay not in LAYOUTS:
+            bad(f"layout {lay!r} is not one of {', '.join(LAYOUTS)}")
+    c = k.conventions
+    if c.momentum_convention not in ("new", "old"):
+        bad(f"conventions.momentum_convention is {c.momentum_convention!r}, expected 'new' or 'old'")
+    if c.running_var_estimator not in ("unbiased", "biased"):
+        bad(f"conventions.running_var_estimator is {c.running_var_estimator!r}, expected 'unbiased' or 'biased'")
+    if c.eps_placement not in ("inside", "outside"):
+        bad(f"conventions.eps_placement is {c.eps_placement!r}, expected 'inside' or 'outside'")
+    if c.running not in RUNNING_STYLES:
+        bad(f"conventions.running is {c.running!r}, expected 'return' or 'inplace'")
+    allowed_saved = ("mean",) + SAVED_FORMS
+    for s in c.saved:
+        if s not in allowed_saved:
+            bad(f"conventions.saved has {s!r}, expected names from {', '.join(allowed_saved)}")
+    if k.op == "rms_norm" and "mean" in c.saved:
+        bad("rms_norm has no mean to save; remove 'mean' from conventions.saved")
+    expect_out = {"y"} | set(c.saved)
+    if k.op in _RUNNING_OPS and c.running == "return" and k.updates_running:
+        expect_out |= {"running_mean", "running_var"}
+    if k.outputs[:1] != ("y",):
+        bad(f"outputs is {k.outputs}, expected 'y' first")
+    unknown = set(k.outputs) - expect_out
+    if unknown:
+        bad(f"outputs names {sorted(unknown)}, which the declaration does not produce "
+            f"(y, conventions.saved={list(c.saved)}, running={c.running!r})")
+    for g in k.grads:
+        if g not in ("dx", "dweight", "dbias"):
+            bad(f"grads has {g!r}, expected names from dx, dweight, dbias")
+    ps = k.precision
+    plist = [] if ps is None else ([ps] if isinstance(ps, Precision) else list(ps.values()))
+    if ps is not None and not isinstance(ps, (Precision, Mapping)):
+        bad(f"precision is {type(ps).__name__}, expected a Precision or a mapping dtype -> Precision")
+    if isinstance(ps, Mapping):
+        missing = [d for d in k.dtypes if d not in ps]
+        if missing:
+            bad(f"precision has no entry for dtypes {missing}")
+    for p in plist:
+        if not isinstance(p, Precision):
+            bad(f"precision entries must be Precision, received {type(p).__name__}")
+        for name in (p.params, p.accumulate, *p.output_accumulate.values()):
+            if name is not None and name not in dtypes.FORMATS:
+                bad(f"precision names dtype {name!r}, expected one of {', '.join(dtypes.FORMATS)}")
+        if p.summation not in SUMMATION_MODELS:
+            bad(f"precision.summation is {p.summation!r}, expected one of {', '.join(SUMMATION_MODELS)}")
+        if not p.lam > 0:
+            bad(f"precision.lam is {p.lam!r}, expected a positive number")
+
+
+def call_with(fn: Callable, kwargs: dict[str, Any]) -> Any:
+    """Call fn with the keyword arguments it accepts (all of them if it takes **kwargs)."""
+    try:
+        sig = inspect.signature(fn)
+    except (TypeError, ValueError):
+        return fn(**kwargs)
+    params = sig.parameters.values()
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params):
+        return fn(**kwargs)
+    names = {p.name for p in params if p.kind in (inspect.Parameter.POSITIONAL_OR_KEYWORD,
+                                                   inspect.Parameter.KEYWORD_ONLY)}
+    return fn(**{k: v for k, v in kwargs.items() if k in names})
+
+
+def load_kernel(spec: str) -> Kernel:
+    """Load a Kernel from ``module:attr`` or ``path/to/file.py:attr``.
+
+    ``attr`` may name a Kernel or a callable returning one (a factory, so that a
+    heavy import happens only when the kernel is used).
+    """
+    if ":" not in spec:
+        raise KernelError(f"kernel spec {spec!r} has no ':'; expected module:attr or path/to/file.py:attr")
+    target, _, attr = spec.rpartition(":")
+    if not target or not attr:
+        raise KernelError(f"kernel spec {spec!r} is incomplete; expected module:attr or path/to/file.py:attr")
+    if target.endswith(".py") or "/" in target or "\\" in target:
+        path = Path(target)
+        if not path.is_file():
+            raise KernelError(f"kernel spec {spec!r}: file {target} does not exist")
+        mod_name = f"refnorm_kernel_{abs(hash(str(path.resolve())))}"
+        sp = importlib.util.spec_from_file_location(mod_name, path)
+        if sp is None or sp.loader is None:
+            raise KernelError(f"kernel spec {spec!r}: cannot import {target}")
+        module = importlib.util.module_from_spec(sp)
+        sys.modules[mod_name] = module
+        try:
+            sp.loader.exec_module(module)
+        except Exception as e:
+            raise KernelError(f"kernel spec {spec!r}: importing {target} failed: {type(e).__name__}: {e}") from e
+    else:
+        try:
+            module = importlib.import_module(target)
+        except Exception as e:
+            raise KernelError(f"kernel spec {spec!r}: importing module {target!r} failed: "
+                              f"{type(e).__name__}: {e}") from e
+    obj = module
+    for part in attr.split("."):
+        if not hasattr(obj, part):
+            raise KernelError(f"kernel spec {spec!r}: {target} has no attribute {attr!r}")
+        obj = getattr(obj, part)
+    if not isinstance(obj, Kernel) and callable(obj):
+        try:
+            obj = obj()
+        except KernelError:
+            raise
+        except Exception as e:
+            raise KernelError(f"kernel spec {spec!r}: calling {attr}() failed: {type(e).__name__}: {e}") from e
+    if isinstance(obj, (list, tuple)) and obj and all(isinstance(o, Kernel) for o in obj):
+        raise KernelError(f"kernel spec {spec!r} names {len(obj)} kernels; name one (e.g. {attr}[0] is not "
+                          "supported: give each its own attribute)")
+    if not isinstance(obj, Kernel):
+        raise KernelError(f"kernel spec {spec!r}: {attr} is {type(obj).__name__}, expected a "
+                          "conformance.Kernel or a function returning one")
+    return obj

@@ -1,0 +1,230 @@
+"""Results of a run: per-case records, the summary table, the verdict and the versioned JSON form.
+
+The JSON layout is described by docs/results-schema.json (JSON Schema); its
+version is SCHEMA_VERSION and changes whenever a field changes meaning.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import platform
+import sys
+import tempfile
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterable
+
+SCHEMA = "refnorm.results"
+SCHEMA_VERSION = 1
+STATUSES = ("passed", "failed", "crashed", "timed_out", "error", "skipped")
+BAD = ("failed", "crashed", "timed_out", "error")
+
+CAUTION = (
+    "Passing is evidence on the cases run, not a proof of correctness: a kernel can be wrong on "
+    "shapes, values, dtypes or conventions that no case exercised. The bounds are derived from a stated "
+    "rounding-error model (docs/tolerances.md); a kernel that uses another algorithm may need another "
+    "model. Sign-off of the kernel's numerics on the target hardware remains the reviewer's responsibility."
+)
+
+
+@dataclass
+class CaseResult:
+    """One case: its status and, per checked output, the comparison metrics (compare.OutputResult.to_dict())."""
+
+    id: str
+    case: dict[str, Any]
+    status: str
+    message: str = ""
+    outputs: list[dict[str, Any]] = field(default_factory=list)
+    duration_s: float = 0.0
+    kernel_s: float = 0.0
+    oracle_s: float = 0.0
+    modified_inputs: list[str] = field(default_factory=list)
+
+    @property
+    def worst_budget(self) -> float:
+        vals = [o.get("budget_used", 0.0) for o in self.outputs]
+        return max(vals) if vals else 0.0
+
+    def to_dict(self) -> dict[str, Any]:
+        return _jsonable(asdict(self))
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "CaseResult":
+        return cls(**{k: d[k] for k in cls.__dataclass_fields__ if k in d})
+
+
+def _jsonable(o: Any) -> Any:
+    """Make floats JSON-safe: inf/nan become the strings "inf", "-inf", "nan"."""
+    if isinstance(o, float):
+        if math.isnan(o):
+            return "nan"
+        if math.isinf(o):
+            return "inf" if o > 0 else "-inf"
+        return o
+    if isinstance(o, dict):
+        return {k: _jsonable(v) for k, v in o.items()}
+    if isinstance(o, (list, tuple)):
+        return [_jsonable(v) for v in o]
+    if hasattr(o, "item") and callable(o.item):  # NumPy scalars
+        return _jsonable(o.item())
+    return o
+
+
+def as_float(v: Any) -> float:
+    """Read back a float written by _jsonable."""
+    if isinstance(v, str):
+        return float(v)
+    return float(v) if v is not None else float("nan")
+
+
+def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
+    """Rows per (op, dtype, output): cases run, passed, failed, crashed (incl. timeouts and errors),
+    the worst fraction of the bound used and its case id. Crashed cases count once per op and dtype
+    under output "*"."""
+    rows: dict[tuple[str, str, str], dict[str, Any]] = {}
+
+    def row(op: str, dt: str, out: str) -> dict[str, Any]:
+        key = (op, dt, out)
+        if key not in rows:
+            rows[key] = {"op": op, "dtype": dt, "output": out, "cases": 0, "passed": 0, "failed": 0,
+                         "crashed": 0, "worst_budget": 0.0, "worst_case": None,
+                         "max_abs": 0.0, "max_rel": 0.0, "max_ulp": 0}
+        return rows[key]
+
+    for c in cases:
+        op, dt = c.case["op"], c.case["dtype"]
+        if c.status == "skipped":
+            continue
+        if c.status in ("crashed", "timed_out", "error"):
+            r = row(op, dt, "*")
+            r["cases"] += 1
+            r["crashed"] += 1
+            r["worst_case"] = r["worst_case"] or c.id
+            continue
+        for o in c.outputs:
+            r = row(op, dt, o["name"])
+            r["cases"] += 1
+            if o["passed"]:
+                r["passed"] += 1
+            else:
+                r["failed"] += 1
+            b = as_float(o.get("budget_used", 0.0))
+            if b > r["worst_budget"] or r["worst_case"] is None:
+                r["worst_budget"], r["worst_case"] = b, c.id
+            r["max_abs"] = max(r["max_abs"], as_float(o.get("max_abs", 0.0)))
+            r["max_rel"] = max(r["max_rel"], as_float(o.get("max_rel", 0.0)))
+            r["max_ulp"] = max(r["max_ulp"], int(o.get("max_ulp", 0) or 0))
+    order = {"y": 0, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
+             "running_var": 4, "dx": 5, "dweight": 6, "dbias": 7, "*": 9}
+    return [_jsonable(rows[k]) for k in sorted(rows, key=lambda k: (k[0], k[1], order.get(k[2], 8), k[2]))]
+
+
+def counts(cases: Iterable[CaseResult]) -> dict[str, int]:
+    out = {s: 0 for s in STATUSES}
+    for c in cases:
+        out[c.status] = out.get(c.status, 0) + 1
+    return out
+
+
+def verdict(cases: list[CaseResult], complete: bool) -> str:
+    if not complete:
+        return "incomplete"
+    if any(c.status in BAD for c in cases):
+        return "not conformant"
+    if not any(c.status == "passed" for c in cases):
+        return "no cases run"
+    return "conformant"
+
+
+def environment() -> dict[str, Any]:
+    """Versions and machine facts a report must record."""
+    import numpy
+
+    import refnorm
+
+    env: dict[str, Any] = {
+        "refnorm": refnorm.__version__,
+        "python": sys.version.split()[0],
+        "numpy": numpy.__version__,
+        "platform": platform.platform(),
+        "machine": platform.machine(),
+        "processor": _cpu_name(),
+        "cpu_count": os.cpu_count(),
+    }
+    for mod in ("ml_dtypes", "torch", "tensorflow", "keras"):
+        m = sys.modules.get(mod)
+        if m is not None:
+            env[mod] = getattr(m, "__version__", "unknown")
+    return env
+
+
+def _cpu_name() -> str:
+    try:
+        with open("/proc/cpuinfo") as f:
+            for line in f:
+                if line.startswith("model name"):
+                    return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return platform.processor() or "unknown"
+
+
+def now_iso() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def build_document(kernel_decl: dict[str, Any], run: dict[str, Any], cases: list[CaseResult],
+                   complete: bool, env: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The results document (see docs/results-schema.json)."""
+    return _jsonable({
+        "schema": SCHEMA,
+        "schema_version": SCHEMA_VERSION,
+        "complete": complete,
+        "verdict": verdict(cases, complete),
+        "kernel": kernel_decl,
+        "environment": env or environment(),
+        "run": run,
+        "counts": counts(cases),
+        "summary": summarize(cases),
+        "cases": [c.to_dict() for c in cases],
+        "caution": CAUTION,
+    })
+
+
+def write_json_atomic(path: str | os.PathLike, doc: dict[str, Any]) -> Path:
+    """Write JSON to a temporary file beside ``path`` and rename it into place (atomic on POSIX)."""
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
+    try:
+        with os.fdopen(fd, "w") as f:
+            json.dump(doc, f, indent=1, allow_nan=False)
+            f.write("\n")
+        os.replace(tmp, p)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    return p
+
+
+def load(path: str | os.PathLike) -> dict[str, Any]:
+    """Read a results document and check its schema and version."""
+    with open(path) as f:
+        doc = json.load(f)
+    if doc.get("schema") != SCHEMA:
+        raise ValueError(f"{path}: not a refnorm results file (schema is {doc.get('schema')!r}, expected {SCHEMA!r})")
+    if doc.get("schema_version") != SCHEMA_VERSION:
+        raise ValueError(f"{path}: results schema version {doc.get('schema_version')!r}, this refnorm reads "
+                         f"version {SCHEMA_VERSION}")
+    return doc
+
+
+def case_results(doc: dict[str, Any]) -> list[CaseResult]:
+    return [CaseResult.from_dict(c) for c in doc["cases"]]

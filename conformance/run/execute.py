@@ -1,0 +1,187 @@
+"""One case, end to end: make inputs, call the kernel, call the oracle, derive bounds, compare.
+
+Runs inside a worker process, so that a kernel that crashes or hangs costs its case only.
+"""
+
+from __future__ import annotations
+
+import time
+import traceback
+from typing import Any, Mapping
+
+import numpy as np
+
+from .. import ops
+from ..arrays import as_numpy
+from ..cases.generators import make_inputs
+from ..cases.model import Case
+from ..compare import compare_output
+from ..kernel import Kernel, call_with
+from ..results import CaseResult
+from ..tolerances import derive_bounds, output_dtype, override_bound
+
+__all__ = ["execute_case", "skip_reason", "KernelCallError"]
+
+
+class KernelCallError(Exception):
+    """The kernel raised, or returned something that does not match its declaration."""
+
+
+def skip_reason(kernel: Kernel, case: Case) -> str | None:
+    """Why the kernel's declaration excludes this case, or None when it applies."""
+    if case.op != kernel.op:
+        return f"op {case.op} is not the kernel's op {kernel.op}"
+    if case.dtype not in kernel.dtypes:
+        return f"dtype {case.dtype} not declared (kernel declares {', '.join(kernel.dtypes)})"
+    if case.layout in ("channels_first", "channels_last") and case.layout not in kernel.layouts:
+        return f"layout {case.layout} not declared"
+    if case.strides != "contiguous" and not kernel.strided:
+        return "non-contiguous input; the kernel declares strided=False"
+    if (case.weight == "none" or case.bias == "none") and not kernel.optional_params:
+        return "weight or bias absent; the kernel declares optional_params=False"
+    if case.running and case.momentum is None and not kernel.momentum_none:
+        return "cumulative average (momentum=None); the kernel declares momentum_none=False"
+    if case.mode == "train" and case.group_length < kernel.min_reduction:
+        return f"reduction of {case.group_length} element(s); the kernel declares min_reduction={kernel.min_reduction}"
+    fwd = "forward" if case.mode == "train" else "forward_eval"
+    bwd = "backward" if case.mode == "train" else "backward_eval"
+    if getattr(kernel, fwd) is None and getattr(kernel, bwd) is None:
+        return f"{case.mode} mode: the kernel has neither {fwd} nor {bwd}"
+    return None
+
+
+def _named(result: Any, names: tuple[str, ...], entry: str) -> dict[str, Any]:
+    """Map a kernel's return value (array, tuple in declared order, or dict) to names."""
+    if isinstance(result, Mapping):
+        missing = [n for n in names if n not in result]
+        if missing:
+            raise KernelCallError(f"{entry} returned a dict without {missing} (declared {list(names)})")
+        return {n: result[n] for n in names}
+    if isinstance(result, (tuple, list)):
+        if len(result) != len(names):
+            raise KernelCallError(f"{entry} returned {len(result)} values, declared {len(names)}: {list(names)}")
+        return dict(zip(names, result))
+    if len(names) == 1 or entry == "forward_eval":
+        return {names[0]: result}
+    raise KernelCallError(f"{entry} returned one {type(result).__name__}, declared {len(names)} outputs: {list(names)}")
+
+
+def _call(kernel: Kernel, entry: str, kwargs: dict[str, Any]) -> Any:
+    try:
+        return call_with(getattr(kernel, entry), kwargs)
+    except Exception as e:  # the kernel's own failure, not the harness's
+        tb = traceback.format_exc(limit=4)
+        raise KernelCallError(f"{entry} raised {type(e).__name__}: {e}\n{tb}") from e
+
+
+def _snapshot(inp: dict[str, Any]) -> dict[str, bytes]:
+    return {k: np.ascontiguousarray(v).tobytes() for k, v in inp.items() if isinstance(v, np.ndarray)}
+
+
+def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd) -> tuple[dict[str, Any], list[str]]:
+    """Call the kernel's entry points for the case; return its outputs by name and the inputs it modified."""
+    conv = kernel.conventions
+    prec = kernel.precision_for(case.dtype)
+    train = case.mode == "train"
+    out: dict[str, Any] = {}
+    modified: list[str] = []
+    fwd = "forward" if train else "forward_eval"
+    saved: dict[str, Any] = {}
+    if getattr(kernel, fwd) is not None:
+        run_inp = dict(inp)
+        inplace = train and case.running and conv.running == "inplace"
+        if inplace:  # the kernel is meant to write these: give it its own copies
+            run_inp["running_mean"] = inp["running_mean"].copy()
+            run_inp["running_var"] = inp["running_var"].copy()
+        before = _snapshot({k: v for k, v in run_inp.items() if not (inplace and k.startswith("running_"))})
+        res = _call(kernel, fwd, ops.kernel_kwargs(case, fwd, run_inp))
+        names = kernel.outputs if train else ("y",)
+        got = _named(res, names, fwd)
+        if train and (not case.running or not kernel.updates_running):
+            got.pop("running_mean", None)
+            got.pop("running_var", None)
+        if inplace and kernel.updates_running:
+            got["running_mean"] = run_inp["running_mean"]
+            got["running_var"] = run_inp["running_var"]
+        after = _snapshot({k: run_inp[k] for k in before})
+        modified += [k for k in before if before[k] != after[k]]
+        out.update(got)
+        saved = {s: got[s] for s in conv.saved if s in got} if train else {}
+    bwd = "backward" if train else "backward_eval"
+    if getattr(kernel, bwd) is not None:
+        if train and not saved and conv.saved and getattr(kernel, fwd) is None:
+            # No forward to take them from: give the oracle's, rounded to the params dtype.
+            from ..dtypes import round_to
+
+            saved = {s: round_to(ops.saved_form(s, oracle_fwd, case), prec.params) for s in conv.saved}
+        before = _snapshot(inp)
+        res = _call(kernel, bwd, ops.kernel_kwargs(case, bwd, inp, saved=saved))
+        out.update(_named(res, kernel.grads, bwd))
+        after = _snapshot(inp)
+        modified += [k for k in before if before[k] != after[k] and k not in modified]
+    return out, modified
+
+
+def execute_case(kernel: Kernel, case: Case, seed: int,
+                 overrides: Mapping[str, tuple[float, float]] | None = None) -> CaseResult:
+    """Run one case; never raises for a kernel's failure (that becomes the case's status)."""
+    t0 = time.perf_counter()
+    reason = skip_reason(kernel, case)
+    if reason:
+        return CaseResult(id=case.id, case=case.as_dict(), status="skipped", message=reason)
+    conv = kernel.conventions
+    prec = kernel.precision_for(case.dtype)
+    inp = make_inputs(case, prec, seed)
+    inp64 = {k: (None if v is None else np.asarray(v).astype(np.float64)) for k, v in inp.items()}
+
+    t_or = time.perf_counter()
+    fwd = ops.oracle_forward(case, conv, inp64)
+    oracle_s = time.perf_counter() - t_or
+
+    t_k = time.perf_counter()
+    try:
+        raw, modified = _kernel_outputs(kernel, case, inp, fwd)
+    except KernelCallError as e:
+        return CaseResult(id=case.id, case=case.as_dict(), status="error", message=str(e),
+                          duration_s=time.perf_counter() - t0)
+    kernel_s = time.perf_counter() - t_k
+
+    t_or = time.perf_counter()
+    expected = ops.forward_outputs(case, conv, fwd, kernel.outputs, kernel.updates_running)
+    if any(k in raw for k in ("dx", "dweight", "dbias")):
+        bwd = ops.oracle_backward(case, conv, inp64)
+        expected["dx"] = bwd.dx
+        if case.weight != "none":
+            expected["dweight"] = bwd.dweight
+        if case.bias != "none":
+            expected["dbias"] = bwd.dbias
+    expected = {k: v for k, v in expected.items() if k in raw}
+    bounds = derive_bounds(case, prec, conv, inp64, expected)
+    oracle_s += time.perf_counter() - t_or
+    for name, (atol, rtol) in (overrides or {}).items():
+        if name in expected:
+            bounds[name] = override_bound(name, expected[name], atol, rtol)
+
+    results = []
+    for name, exp in expected.items():
+        act = raw[name]
+        if act is None:
+            return CaseResult(id=case.id, case=case.as_dict(), status="failed",
+                              message=f"output {name}: the kernel returned None for a declared output",
+                              duration_s=time.perf_counter() - t0)
+        try:
+            act = as_numpy(act)
+        except Exception as e:
+            return CaseResult(id=case.id, case=case.as_dict(), status="error",
+                              message=f"output {name}: cannot read the returned {type(act).__name__} as an array: {e}",
+                              duration_s=time.perf_counter() - t0)
+        results.append(compare_output(name, act, exp, bounds[name], dtype=output_dtype(name, prec)))
+    failed = [r for r in results if not r.passed]
+    status = "failed" if failed or modified else "passed"
+    msgs = []
+    if modified:
+        msgs.append(f"the kernel modified its input(s) in place: {', '.join(modified)}")
+    msgs += [f"{r.name}: {r.message}" for r in failed]
+    return CaseResult(id=case.id, case=case.as_dict(), status=status, message="\n".join(msgs),
+                      outputs=[r.to_dict() for r in results], duration_s=time.perf_counter() - t0,
+                      kernel_s=kernel_s, oracle_s=oracle_s, modified_inputs=modified)

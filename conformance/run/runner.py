@@ -1,0 +1,92 @@
+"""Run a kernel over the catalog and build the results document."""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Mapping, TextIO
+
+from ..cases import catalog, find_case
+from ..cases.model import Case
+from ..kernel import Kernel
+from ..results import CaseResult, build_document, now_iso
+from .execute import skip_reason
+from .pool import WorkerPool
+from .progress import Progress
+
+__all__ = ["RunOptions", "select_cases", "run_check"]
+
+
+@dataclass
+class RunOptions:
+    """What to run and how. ``overrides`` maps an output name to a fixed (atol, rtol)."""
+
+    tier: str = "standard"
+    dtypes: tuple[str, ...] | None = None
+    case_ids: tuple[str, ...] = ()
+    seed: int = 0
+    workers: int = 1
+    timeout: float = 120.0
+    overrides: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    command: str = ""
+
+
+def select_cases(kernel: Kernel, opts: RunOptions) -> list[Case]:
+    """The catalog cases for the kernel's op and dtypes (or the named cases only)."""
+    if opts.case_ids:
+        return [find_case(cid) for cid in opts.case_ids]
+    dts = opts.dtypes or kernel.dtypes
+    return catalog([kernel.op], dts, opts.tier)
+
+
+def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
+              stream: TextIO | None = None, quiet: bool = False) -> dict[str, Any]:
+    """Run every selected case in worker processes; return the results document.
+
+    Ctrl-C stops the run: the document then has complete=False and verdict "incomplete".
+    """
+    cases = select_cases(kernel, opts)
+    started, t0 = now_iso(), time.monotonic()
+    results: dict[str, CaseResult] = {}
+    to_run = []
+    for c in cases:
+        why = skip_reason(kernel, c)
+        if why:
+            results[c.id] = CaseResult(id=c.id, case=c.as_dict(), status="skipped", message=why)
+        else:
+            to_run.append(c)
+    prog = Progress(len(to_run), stream or sys.stderr, quiet=quiet)
+    complete = True
+
+    def done(r: CaseResult) -> None:
+        results[r.id] = r
+        prog.update(r)
+
+    pool = WorkerPool(kernel, seed=opts.seed, workers=opts.workers, timeout=opts.timeout, spec=spec,
+                      overrides=dict(opts.overrides))
+    try:
+        pool.run(to_run, done)
+    except KeyboardInterrupt:
+        complete = False
+    finally:
+        prog.close()
+    ordered = [results[c.id] for c in cases if c.id in results]
+    run = {
+        "tier": opts.tier if not opts.case_ids else "selected",
+        "seed": opts.seed,
+        "dtypes": list(opts.dtypes or kernel.dtypes),
+        "case_ids": list(opts.case_ids),
+        "workers": opts.workers,
+        "timeout_s": opts.timeout,
+        "overrides": {k: list(v) for k, v in opts.overrides.items()},
+        "started": started,
+        "finished": now_iso(),
+        "duration_s": round(time.monotonic() - t0, 3),
+        "cases_selected": len(cases),
+        "command": opts.command,
+        "spec": spec,
+        "pid": os.getpid(),
+    }
+    return build_document(kernel.declaration(), run, ordered, complete)
