@@ -18,6 +18,27 @@ from .kernel import OPS, Kernel, KernelError, load_kernel
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 
+#: Modules that extend the command line. Each may define
+#:   add_check_arguments(parser)       options of `refnorm check`
+#:   add_commands(subparsers)          further subcommands (set func=fn(args, argv) -> exit code)
+#:   amend(args, doc) -> doc           change a check's results before they are printed and written
+#:                                     (waivers, baselines); must keep doc's schema
+#:   emit(args, doc)                   write further artefacts of a check (reports, JUnit XML)
+EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli")
+
+
+def _extensions():
+    import importlib
+
+    mods = []
+    for name in EXTENSIONS:
+        try:
+            mods.append(importlib.import_module(name))
+        except ModuleNotFoundError as e:
+            if e.name is None or not name.startswith(e.name):
+                raise
+    return mods
+
 
 class UsageError(Exception):
     """Bad usage; the message says what to change."""
@@ -54,12 +75,18 @@ def build_parser() -> argparse.ArgumentParser:
                    help="replace the derived bound of one output by atol + rtol*|oracle| (repeatable)")
     c.add_argument("--quiet", action="store_true", help="no progress output")
     c.set_defaults(func=cmd_check)
+    for ext in _extensions():
+        if hasattr(ext, "add_check_arguments"):
+            ext.add_check_arguments(c)
 
     s = sub.add_parser("cases", help="list the case catalog")
     s.add_argument("--op", nargs="+", choices=OPS, default=list(OPS))
     s.add_argument("--dtype", nargs="+", choices=_dtypes.FORMATS, default=["float32"])
     s.add_argument("--tier", choices=TIERS, default="standard")
     s.set_defaults(func=cmd_cases)
+    for ext in _extensions():
+        if hasattr(ext, "add_commands"):
+            ext.add_commands(sub)
     return p
 
 
@@ -104,6 +131,9 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
         doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
+    for ext in _extensions():
+        if hasattr(ext, "amend"):
+            doc = ext.amend(args, doc)
     print(summary_table(doc))
     print()
     for line in verdict_lines(doc):
@@ -111,14 +141,12 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
     if args.json:
         path = write_json_atomic(args.json, doc)
         print(f"results: {path}")
-    finish_outputs(args, doc)
+    for ext in _extensions():
+        if hasattr(ext, "emit"):
+            ext.emit(args, doc)
     if not doc["complete"]:
         return EXIT_INTERRUPTED
     return EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
-
-
-def finish_outputs(args: argparse.Namespace, doc: dict) -> None:
-    """Hook for further artefacts of a check (reports, CI files); none by default."""
 
 
 def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
