@@ -1,0 +1,125 @@
+"""The case catalog: ids, determinism, and coverage of what the catalog promises (docs/kernel-interface.md)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from conformance import dtypes
+from conformance.cases import Case, catalog, find_case, make_inputs
+from conformance.cases.generators import group_index
+from conformance.kernel import OPS, Precision
+
+ALL = {op: catalog([op], ["float16"], "standard") for op in OPS}
+
+
+def test_ids_are_unique_and_round_trip():
+    for op, cases in ALL.items():
+        ids = [c.id for c in cases]
+        assert len(ids) == len(set(ids))
+        for c in cases[:: max(1, len(cases) // 7)]:
+            assert find_case(c.id) == c
+            assert Case.from_dict(c.as_dict()) == c
+
+
+def test_catalog_is_deterministic():
+    assert [c.id for c in catalog(["group_norm"], ["bfloat16"], "standard")] == \
+        [c.id for c in catalog(["group_norm"], ["bfloat16"], "standard")]
+
+
+@pytest.mark.parametrize("op", OPS)
+def test_standard_covers_the_promised_axes(op):
+    cases = ALL[op]
+    kinds = {c.values for c in cases}
+    # float16 gets the near-overflow kind: its range is far below float32 accumulation's.
+    assert {"normal", "cancellation", "constant", "heavy_tail", "near_overflow", "subnormal", "zeros",
+            "nonfinite"} <= kinds
+    assert {"contiguous", "transposed", "sliced", "reversed"} <= {c.strides for c in cases}
+    assert {len(c.shape) for c in cases} >= {2, 3, 4, 5} or op in ("layer_norm", "rms_norm")
+    assert max(c.group_length for c in cases) >= 2**20
+    assert min(c.group_length for c in cases) == 1
+    assert any(c.shape[0] == 1 for c in cases)
+    assert {c.eps for c in cases} >= {0.0, 1e-5, 1e-1}
+    assert "none" in {c.weight for c in cases} and "zero" in {c.weight for c in cases}
+    assert "negative" in {c.weight for c in cases}
+    if op in ("batch_norm", "instance_norm"):
+        assert {"train", "eval"} == {c.mode for c in cases}
+        moms = {c.momentum for c in cases if c.running}
+        assert None in moms and 0.1 in moms
+        assert "channels_last_memory" in {c.strides for c in cases}
+    if op in ("batch_norm", "group_norm", "instance_norm"):
+        assert {"channels_first", "channels_last"} == {c.layout for c in cases}
+        # odd and prime sizes
+        assert any(any(d in (7, 11, 13) for d in c.shape) for c in cases)
+
+
+def test_inputs_are_rounded_once_to_the_declared_dtypes():
+    c = find_case("batch_norm/float16/channels_first/4x8x6x5/normal/w=random/b=random/eps=1e-05/train/momentum=0.1/contiguous")
+    inp = make_inputs(c, Precision(params="float32"), seed=0)
+    assert inp["x"].dtype == np.float16 and inp["dy"].dtype == np.float16
+    assert inp["weight"].dtype == np.float32 and inp["running_var"].dtype == np.float32
+    assert inp["x"].shape == c.shape and (inp["running_var"] > 0).all()
+
+
+def test_strides_change_memory_not_values():
+    base = find_case("layer_norm/float32/trailing/12x96/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous")
+    ref = make_inputs(base, Precision(), 0)["x"]
+    for s in ("transposed", "sliced", "reversed"):
+        from dataclasses import replace
+
+        c = replace(base, strides=s)
+        x = make_inputs(c, Precision(), 0)["x"]
+        assert not x.flags.c_contiguous
+        # The data is drawn from the id's seed, which includes the stride kind; what must hold is
+        # that the logical shape and dtype are the case's.
+        assert x.shape == ref.shape and x.dtype == ref.dtype
+    rev = make_inputs(replace(base, strides="reversed"), Precision(), 0)["x"]
+    assert all(st < 0 for st in rev.strides)
+
+
+def test_cancellation_values_are_ill_conditioned_for_the_variance():
+    # Condition number of the variance kappa = sqrt(1 + mean^2/var): Chan, Golub & LeVeque 1983.
+    for dt in ("float32", "float16", "bfloat16"):
+        c = Case("layer_norm", dt, (4, 2048), "trailing", values="cancellation", norm_ndim=1)
+        x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
+        kappa = np.sqrt(1 + x.mean(1) ** 2 / x.var(1))
+        assert kappa.min() > 50
+        # and still spread over several ULPs of the mean (IEEE 754-2019 / bfloat16 unit roundoff)
+        assert (x.std(1) > 4 * dtypes.unit_roundoff(dt) * np.abs(x.mean(1))).all()
+
+
+def test_near_overflow_is_near_the_largest_float16():
+    # IEEE 754-2019 binary16: the largest finite value is 65504.
+    c = Case("rms_norm", "float16", (4, 64), "trailing", values="near_overflow", norm_ndim=1)
+    x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
+    assert np.abs(x).max() <= 65504 and np.abs(x).min() >= 0.5 * 65504 * 0.99
+
+
+def test_subnormal_values_are_subnormal():
+    # IEEE 754-2019 binary16: the smallest positive normal is 2^-14.
+    c = Case("layer_norm", "float16", (4, 64), "trailing", values="subnormal", norm_ndim=1)
+    x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
+    assert (np.abs(x) < 2.0**-14).all() and (x != 0).any()
+
+
+def test_group_index_uses_contiguous_channel_groups():
+    # Wu & He 2018, §3.1: group norm splits the C channels into contiguous groups of C/G.
+    c = Case("group_norm", "float32", (2, 6, 3), "channels_first", groups=3)
+    gi = group_index(c)
+    assert gi[0, :, 0].tolist() == [0, 0, 1, 1, 2, 2] and gi[1, :, 0].tolist() == [3, 3, 4, 4, 5, 5]
+
+
+def test_constant_values_have_zero_variance_per_group():
+    c = Case("instance_norm", "float32", (2, 3, 4, 4), "channels_first", values="constant")
+    x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
+    assert np.allclose(x.var(axis=(2, 3)), 0.0, rtol=0, atol=0)
+
+
+def test_case_lengths():
+    c = Case("batch_norm", "float32", (16, 2, 256, 256), "channels_first")
+    assert c.group_length == 2**20 and c.param_length == 2**20
+    g = Case("group_norm", "float32", (2, 6, 5, 5), "channels_last".replace("last", "first"), groups=3)
+    assert g.group_length == 2 * 25 and g.param_length == 2 * 25
+    assert math.prod(Case("layer_norm", "float32", (3, 4, 5), "trailing", norm_ndim=2).normalized_shape) == 20
