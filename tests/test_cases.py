@@ -101,7 +101,8 @@ def test_subnormal_values_are_subnormal():
     # IEEE 754-2019 binary16: the smallest positive normal is 2^-14.
     c = Case("layer_norm", "float16", (4, 64), "trailing", values="subnormal", norm_ndim=1)
     x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
-    assert (np.abs(x) < 2.0**-14).all() and (x != 0).any()
+    # Values drawn below 2^-14 may round up to it, the smallest normal, and no further.
+    assert (np.abs(x) <= 2.0**-14).all() and ((np.abs(x) < 2.0**-14) & (x != 0)).mean() > 0.9
 
 
 def test_group_index_uses_contiguous_channel_groups():

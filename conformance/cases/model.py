@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 __all__ = ["Case", "TIERS", "VALUE_KINDS", "STRIDE_KINDS"]
 
@@ -54,7 +54,7 @@ class Case:
     strides: str = "contiguous"
     groups: int = 0             # group norm only
     norm_ndim: int = 0          # layer/RMS norm only
-    tier: str = "standard"
+    tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
     def id(self) -> str:

@@ -32,6 +32,10 @@ def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed
                  overrides: Mapping[str, tuple[float, float]] | None) -> None:
     # Ctrl-C goes to the parent, which ends the workers itself.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # The parent reports a crash by its signal; a Python stack dump from here would only be noise.
+    import faulthandler
+
+    faulthandler.disable()
     from .execute import execute_case
 
     if kernel is None:
