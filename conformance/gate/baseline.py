@@ -1,0 +1,99 @@
+"""Baselines: fail a port whose error grew over an earlier run, even while still within the bound.
+
+The measure is an output's budget used (largest error / bound over its elements,
+conformance.compare). Growth of output o of case c is
+
+    g = budget_new / max(budget_old, floor)
+
+against the same case id and output in the baseline document. An output regresses
+when both runs passed the case and g > growth (default 2, docs/ci.md). The floor
+(default 0.01, 1% of the bound) keeps the rounding noise of a near-exact baseline
+from counting as growth: below it, differences are far inside the tolerance.
+
+A case id fixes the case's data for a given seed only (Case.seed_for), so a
+baseline from another seed compares other data; that is reported as a note.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Mapping
+
+from ..results import as_float
+
+__all__ = ["baseline_index", "regress_case", "growth_of", "baseline_notes"]
+
+
+def baseline_index(old: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
+    """The baseline's cases by id."""
+    return {c["id"]: c for c in old.get("cases", [])}
+
+
+def growth_of(new_budget: Any, old_budget: Any, floor: float) -> float:
+    """budget_new / max(budget_old, floor); NaN when either is not finite."""
+    b_new, b_old = as_float(new_budget), as_float(old_budget)
+    if not (math.isfinite(b_new) and math.isfinite(b_old)):
+        return float("nan")
+    denom = max(b_old, floor)
+    if denom <= 0.0:
+        return 1.0 if b_new <= 0.0 else float("inf")
+    return b_new / denom
+
+
+def regress_case(case: dict[str, Any], old_case: Mapping[str, Any] | None, growth: float,
+                 floor: float) -> list[dict[str, Any]]:
+    """Mark a passed case failed when an output's budget used grew by more than ``growth``.
+
+    Changes ``case`` in place: the output gets ``passed=False``, ``within_bound=True`` and a
+    ``regression`` record; the case gets status "failed" and a message per regressed output.
+    Returns the regression records (empty when nothing regressed or nothing is comparable).
+    """
+    if old_case is None or case.get("status") != "passed" or old_case.get("status") != "passed":
+        return []
+    old_out = {o["name"]: o for o in old_case.get("outputs", [])}
+    found = []
+    msgs = []
+    for o in case.get("outputs", []):
+        prev = old_out.get(o["name"])
+        if prev is None:
+            continue
+        g = growth_of(o.get("budget_used"), prev.get("budget_used"), floor)
+        if not (g > growth):  # NaN never regresses: a non-finite budget is the bound's business
+            continue
+        rec = {
+            "output": o["name"],
+            "growth": g,
+            "limit": growth,
+            "floor": floor,
+            "budget_used": as_float(o.get("budget_used")),
+            "baseline_budget_used": as_float(prev.get("budget_used")),
+            "max_abs": as_float(o.get("max_abs")),
+            "baseline_max_abs": as_float(prev.get("max_abs")),
+        }
+        o["passed"] = False
+        o["within_bound"] = True
+        o["regression"] = rec
+        found.append(rec)
+        msgs.append(f"{o['name']}: within its bound, but the budget used grew {g:.3g}x over the baseline "
+                    f"({rec['baseline_budget_used']:.3g} -> {rec['budget_used']:.3g} of the bound; max abs error "
+                    f"{rec['baseline_max_abs']:.3g} -> {rec['max_abs']:.3g}); the gate allows {growth:g}x")
+    if found:
+        case["status"] = "failed"
+        case["message"] = "\n".join(([case["message"]] if case.get("message") else []) + msgs)
+    return found
+
+
+def baseline_notes(new: Mapping[str, Any], old: Mapping[str, Any]) -> list[str]:
+    """Why a comparison with this baseline may mean less than it seems."""
+    notes = []
+    ks_new, ks_old = new.get("kernel", {}), old.get("kernel", {})
+    if ks_new.get("op") != ks_old.get("op"):
+        notes.append(f"the baseline checked op {ks_old.get('op')}, this run {ks_new.get('op')}: no case in common")
+    s_new, s_old = new.get("run", {}).get("seed"), old.get("run", {}).get("seed")
+    if s_new != s_old:
+        notes.append(f"the baseline ran with seed {s_old}, this run with seed {s_new}: the same case ids hold "
+                     "other data, so growth compares different samples")
+    common = set(baseline_index(new)) & set(baseline_index(old))
+    if not common and ks_new.get("op") == ks_old.get("op"):
+        notes.append("the baseline has no case id in common with this run")
+    return notes

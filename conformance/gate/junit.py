@@ -1,0 +1,116 @@
+"""JUnit XML from results documents, for CI systems that read test reports but do not run pytest.
+
+Layout (the common JUnit XML form that CI systems read):
+
+    <testsuites name="refnorm" tests= failures= errors= skipped= time=>
+      <testsuite name=KERNEL tests= failures= errors= skipped= time= timestamp=>
+        <properties> spec, op, tier, seed, verdict, gate verdict, caution </properties>
+        <testcase classname="OP.DTYPE" name=CASE_ID time=SECONDS>
+          <failure message=FIRST_LINE type=STATUS>full message</failure>   a failed case
+          <error message= type=crashed|timed_out|error>...</error>          a crash, timeout or exception
+          <skipped message= type=skipped|waived/>                           skipped or waived
+        </testcase>
+
+Gate outcomes (conformance.gate.waivers.gate_outcome) decide the child element, so
+a waived failure is a skip and an expired waiver is a failure, as in the pytest route.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import xml.etree.ElementTree as ET
+from pathlib import Path
+from typing import Any, Iterable, Mapping
+
+from ..results import as_float
+from .waivers import gate_outcome
+
+__all__ = ["junit_tree", "write_junit"]
+
+
+#: Characters XML 1.0 does not allow (W3C XML 1.0, section 2.2 "Characters"); a kernel's
+#: message may carry any of them, so they are shown as \xNN instead.
+_NOT_XML = re.compile("[^\u0009\u000a\u000d\u0020-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
+
+
+def _clean(text: str) -> str:
+    return _NOT_XML.sub(lambda m: f"\\x{ord(m.group()):02x}", text)
+
+
+def _first_line(msg: str, status: str) -> str:
+    first = msg.strip().splitlines()[0] if msg.strip() else status
+    first = _clean(first)
+    return first if len(first) <= 500 else first[:497] + "..."
+
+
+def _suite(doc: Mapping[str, Any]) -> ET.Element:
+    kernel = doc.get("kernel", {})
+    run = doc.get("run", {})
+    suite = ET.Element("testsuite", name=str(kernel.get("name", "kernel")))
+    props = ET.SubElement(suite, "properties")
+    gate = doc.get("gate") or {}
+    for k, v in (("spec", run.get("spec")), ("op", kernel.get("op")), ("tier", run.get("tier")),
+                 ("seed", run.get("seed")), ("verdict", doc.get("verdict")), ("gate", gate.get("verdict")),
+                 ("caution", doc.get("caution"))):
+        if v is not None:
+            ET.SubElement(props, "property", name=k, value=_clean(str(v)))
+    n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
+    total = 0.0
+    for c in doc.get("cases", []):
+        case = c.get("case", {})
+        t = as_float(c.get("duration_s", 0.0))
+        t = t if t == t else 0.0
+        total += t
+        tc = ET.SubElement(suite, "testcase", classname=f"{case.get('op', kernel.get('op'))}.{case.get('dtype')}",
+                           name=_clean(c["id"]), time=f"{t:.3f}")
+        outcome, msg = gate_outcome(c)
+        n["tests"] += 1
+        if outcome == "failed":
+            n["failures"] += 1
+            el = ET.SubElement(tc, "failure", message=_first_line(msg, c["status"]), type=c["status"])
+            el.text = _clean(msg)
+        elif outcome == "error":
+            n["errors"] += 1
+            el = ET.SubElement(tc, "error", message=_first_line(msg, c["status"]), type=c["status"])
+            el.text = _clean(msg)
+        elif outcome in ("skipped", "waived"):
+            n["skipped"] += 1
+            ET.SubElement(tc, "skipped", message=_first_line(msg, outcome), type=outcome)
+    suite.set("tests", str(n["tests"]))
+    suite.set("failures", str(n["failures"]))
+    suite.set("errors", str(n["errors"]))
+    suite.set("skipped", str(n["skipped"]))
+    suite.set("time", f"{total:.3f}")
+    if run.get("started"):
+        suite.set("timestamp", str(run["started"]))
+    return suite
+
+
+def junit_tree(docs: Iterable[Mapping[str, Any]]) -> ET.ElementTree:
+    """A <testsuites> tree with one <testsuite> per results document (one per kernel)."""
+    root = ET.Element("testsuites", name="refnorm")
+    tot = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
+    time = 0.0
+    for d in docs:
+        s = _suite(d)
+        root.append(s)
+        for k in tot:
+            tot[k] += int(s.get(k))
+        time += float(s.get("time"))
+    for k, v in tot.items():
+        root.set(k, str(v))
+    root.set("time", f"{time:.3f}")
+    tree = ET.ElementTree(root)
+    ET.indent(tree)
+    return tree
+
+
+def write_junit(path: str | os.PathLike, docs: Iterable[Mapping[str, Any]]) -> Path:
+    """Write the JUnit XML of ``docs`` to ``path`` (via a temporary file renamed into place)."""
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    tmp = p.with_name(f".{p.name}.tmp")
+    junit_tree(docs).write(tmp, encoding="utf-8", xml_declaration=True)
+    os.replace(tmp, p)
+    return p
