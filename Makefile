@@ -29,7 +29,7 @@ demo: $(STAMP) examples
 # The report's browser test renders in Debian's chromium when it can be installed
 # (root and apt-get present); otherwise that test is skipped with its reason.
 browser:
-	@if command -v chromium >/dev/null 2>&1; then :; \
+	@if command -v chromium >/dev/null 2>&1 || command -v chromium-browser >/dev/null 2>&1; then :; \
 	elif [ "$$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then \
 		echo "browser: installing Debian's chromium for the report's rendering test"; \
 		(apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null) \

@@ -204,6 +204,10 @@ def write_json_atomic(path: str | os.PathLike, doc: dict[str, Any]) -> Path:
         with os.fdopen(fd, "w") as f:
             json.dump(doc, f, indent=1, allow_nan=False)
             f.write("\n")
+        # mkstemp creates the file 0600; give it the mode a plain open() would (umask applied).
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)
         os.replace(tmp, p)
     except BaseException:
         try:
