@@ -1,0 +1,235 @@
+"""Boundary validation of the oracle, and IEEE 754 propagation of NaN and Inf.
+
+Every bad argument raises refnorm.RefnormError with a message that names the
+argument, what was expected and what was received (the project's rule); the
+tests assert on the message text. NaN and Inf are not errors: they propagate
+by IEEE 754-2019 arithmetic (§7.2: inf - inf and 0 * inf are invalid and give
+NaN; §6.2: NaN operands give NaN), which confines them to the statistic group
+they are in.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import refnorm
+from refnorm import RefnormError
+
+RNG = np.random.default_rng(7)
+X = RNG.normal(size=(4, 3, 5))  # (N, C, L)
+DY = RNG.normal(size=X.shape)
+RM, RV = np.zeros(3), np.ones(3)
+
+
+def _raises(match):
+    return pytest.raises(RefnormError, match=match)
+
+
+# --------------------------------------------------------------------------- shapes
+
+
+@pytest.mark.parametrize("name", ["weight", "bias", "running_mean", "running_var"])
+def test_batch_norm_parameter_shapes(name):
+    kw = {"running_mean": RM, "running_var": RV, name: np.ones(4)}
+    with _raises(rf"^{name} has shape \(4,\), expected \(3,\): one value per channel along axis 1"):
+        refnorm.batch_norm_forward(X, **kw)
+
+
+def test_batch_norm_channels_last_parameter_shape():
+    with _raises(r"^weight has shape \(3,\), expected \(5,\): one value per channel along axis 2"):
+        refnorm.batch_norm_forward(X, np.ones(3), axis=-1)
+
+
+def test_backward_parameter_and_saved_statistic_shapes():
+    with _raises(r"^weight has shape \(2,\), expected \(3,\)"):
+        refnorm.batch_norm_backward(DY, X, np.ones(2))
+    with _raises(r"^rstd has shape \(4,\), expected \(3,\)"):
+        refnorm.batch_norm_backward(DY, X, mean=np.zeros(3), rstd=np.ones(4))
+    with _raises(r"^mean has shape \(4, 3\), expected \(4, 1\)"):
+        refnorm.group_norm_backward(DY, X, 1, mean=np.zeros((4, 3)), rstd=np.ones((4, 1)))
+    with _raises(r"^dy has shape \(4, 3\), expected \(4, 3, 5\) \(the shape of x\)"):
+        refnorm.layer_norm_backward(DY[..., 0], X, 5)
+
+
+@pytest.mark.parametrize("op", ["layer", "rms"])
+def test_feature_parameter_shapes(op):
+    fwd = refnorm.layer_norm_forward if op == "layer" else refnorm.rms_norm_forward
+    with _raises(r"^weight has shape \(3,\), expected \(5,\): one value per element of the normalized axes"):
+        fwd(X, 5, np.ones(3))
+    with _raises(r"^bias has shape \(5,\), expected \(3, 5\)"):
+        fwd(X, (3, 5), None, np.ones(5))
+    with _raises(r"^normalized_shape is \(4,\), expected the trailing dims of x"):
+        fwd(X, 4)
+
+
+def test_group_and_instance_parameter_shapes():
+    with _raises(r"^bias has shape \(6,\), expected \(3,\)"):
+        refnorm.group_norm_forward(X, 3, None, np.ones(6))
+    with _raises(r"^running_var has shape \(1,\), expected \(3,\)"):
+        refnorm.instance_norm_forward(X, running_mean=RM, running_var=np.ones(1))
+
+
+def test_channels_not_divisible_by_num_groups():
+    x = RNG.normal(size=(2, 6, 3))
+    with _raises(r"^num_groups is 4, expected a divisor of the 6 channels along axis 1 of x"):
+        refnorm.group_norm_forward(x, 4)
+    with _raises(r"^num_groups is 4, expected a divisor of the 6 channels"):
+        refnorm.group_norm_backward(x, x, 4)
+    with _raises(r"^num_groups is int 0, expected a positive integer"):
+        refnorm.group_norm_forward(x, 0)
+
+
+# --------------------------------------------------------------------------- ranges
+
+
+@pytest.mark.parametrize("call", [
+    lambda e: refnorm.batch_norm_forward(X, eps=e),
+    lambda e: refnorm.batch_norm_backward(DY, X, eps=e),
+    lambda e: refnorm.layer_norm_forward(X, 5, eps=e),
+    lambda e: refnorm.group_norm_forward(X, 3, eps=e),
+    lambda e: refnorm.instance_norm_forward(X, eps=e),
+    lambda e: refnorm.rms_norm_backward(DY, X, 5, eps=e),
+])
+def test_negative_eps(call):
+    with _raises(r"^eps is -1e-05, expected a finite real number >= 0"):
+        call(-1e-5)
+    with _raises(r"^eps is nan, expected a finite real number >= 0"):
+        call(float("nan"))
+
+
+@pytest.mark.parametrize("momentum", [1.5, -0.1])
+def test_momentum_outside_unit_interval(momentum):
+    msg = rf"^momentum is {momentum!r}, expected a number in \[0, 1\]"
+    with _raises(msg):
+        refnorm.batch_norm_forward(X, running_mean=RM, running_var=RV, momentum=momentum)
+    with _raises(msg):
+        refnorm.instance_norm_forward(X, running_mean=RM, running_var=RV, momentum=momentum)
+    with _raises(msg):
+        refnorm.running_update(RM, RV, momentum=momentum)
+
+
+def test_momentum_none_needs_batches_seen():
+    msg = r"^batches_seen is NoneType None, expected an integer >= 0 when momentum=None"
+    with _raises(msg):
+        refnorm.batch_norm_forward(X, running_mean=RM, running_var=RV, momentum=None)
+    with _raises(msg):
+        refnorm.running_update(RM, RV, momentum=None)
+    with _raises(r"^batches_seen is -1, expected an integer >= 0"):
+        refnorm.running_update(RM, RV, momentum=None, batches_seen=-1)
+
+
+def test_one_element_reduction_with_unbiased_estimator():
+    """n = 1 per statistic: M2/(n - 1) is 0/0; the message names the estimator that is defined."""
+    x = RNG.normal(size=(1, 3))
+    msg = (r"reduces over 1 element per statistic: the unbiased variance estimate \(division by n - 1\) "
+           r"is undefined there; running_var_estimator='biased' is defined")
+    with _raises(r"^batch_norm_forward " + msg):
+        refnorm.batch_norm_forward(x, running_mean=RM, running_var=RV)
+    with _raises(r"^instance_norm_forward " + msg):
+        refnorm.instance_norm_forward(x[..., None], running_mean=RM, running_var=RV)
+    # The biased estimator is defined there: the batch variance is 0.
+    out = refnorm.batch_norm_forward(x, running_mean=RM, running_var=RV, running_var_estimator="biased")
+    np.testing.assert_array_equal(out.running_var, 0.9 * RV)
+
+
+@pytest.mark.parametrize("dtype", [np.int32, np.int64, np.bool_, np.complex128])
+def test_non_float_inputs(dtype):
+    xi = np.ones((4, 3, 5), dtype=dtype)
+    dt = np.dtype(dtype)
+    with _raises(rf"^x has dtype {dt}, expected a floating-point dtype"):
+        refnorm.batch_norm_forward(xi)
+    with _raises(rf"^x has dtype {dt}, expected a floating-point dtype"):
+        refnorm.layer_norm_forward(xi, 5)
+    with _raises(rf"^weight has dtype {dt}, expected a floating-point dtype"):
+        refnorm.group_norm_forward(X, 3, np.ones(3, dtype=dtype))
+    with _raises(rf"^dy has dtype {dt}, expected a floating-point dtype"):
+        refnorm.rms_norm_backward(xi, X, 5)
+
+
+def test_other_boundary_errors():
+    with _raises(r"^x has rank 1 \(shape \(5,\)\), expected rank >= 2"):
+        refnorm.batch_norm_forward(np.ones(5))
+    with _raises(r"^running_mean and running_var are None, expected arrays of shape \(3,\) in eval mode"):
+        refnorm.batch_norm_forward(X, training=False)
+    with _raises(r"^running_mean and running_var must be given together"):
+        refnorm.batch_norm_forward(X, running_mean=RM)
+    with _raises(r"^axis is 3, expected an integer in \[-3, 3\)"):
+        refnorm.batch_norm_forward(X, axis=3)
+    with _raises(r"^eps_placement is 'between', expected one of 'inside', 'outside'"):
+        refnorm.layer_norm_forward(X, 5, eps_placement="between")
+    with _raises(r"^momentum_convention is 'newest', expected one of 'new', 'old'"):
+        refnorm.running_update(RM, RV, momentum_convention="newest")
+    with _raises(r"^running_var_estimator is 'sample', expected one of 'unbiased', 'biased'"):
+        refnorm.batch_norm_forward(X, running_var_estimator="sample")
+    with _raises(r"^x has shape \(0, 3, 5\) with no elements"):
+        refnorm.batch_norm_forward(np.ones((0, 3, 5)))
+
+
+def test_inputs_are_not_modified():
+    """Pure functions: the caller's arrays, running statistics included, are left as they were."""
+    x, dy, w, b, rm, rv = (a.copy() for a in (X, DY, np.ones(3) * 1.5, np.ones(3) * 0.5, RM + 0.25, RV * 2))
+    refnorm.batch_norm_forward(x, w, b, running_mean=rm, running_var=rv)
+    refnorm.batch_norm_backward(dy, x, w)
+    refnorm.instance_norm_forward(x, w, b, running_mean=rm, running_var=rv)
+    for got, want in ((x, X), (dy, DY), (w, np.ones(3) * 1.5), (b, np.ones(3) * 0.5), (rm, RM + 0.25), (rv, RV * 2)):
+        np.testing.assert_array_equal(got, want)
+
+
+# --------------------------------------------------------------------------- NaN and Inf
+
+
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")  # NumPy reports the IEEE invalid operations
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+def test_nan_inf_confined_to_batch_norm_channel(bad):
+    """Documented (refnorm.batch_norm_forward): a NaN or Inf in a channel makes that channel's
+    statistics and whole output NaN (the mean is +-inf or NaN, then x - mean gives NaN:
+    IEEE 754-2019 §7.2); the other channels are the same as without it, bit for bit."""
+    x = X.copy()
+    x[2, 1, 3] = bad
+    clean = refnorm.batch_norm_forward(X, eps=1e-5)
+    out = refnorm.batch_norm_forward(x, eps=1e-5)
+    assert np.all(np.isnan(out.y[:, 1])) and np.isnan(out.var[1])
+    np.testing.assert_array_equal(out.y[:, [0, 2]], clean.y[:, [0, 2]])
+    np.testing.assert_array_equal(out.mean[[0, 2]], clean.mean[[0, 2]])
+    bw = refnorm.batch_norm_backward(DY, x, eps=1e-5)
+    assert np.all(np.isnan(bw.dx[:, 1]))
+    np.testing.assert_array_equal(bw.dx[:, [0, 2]], refnorm.batch_norm_backward(DY, X, eps=1e-5).dx[:, [0, 2]])
+
+
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")
+@pytest.mark.parametrize("bad", [np.nan, np.inf])
+def test_nan_inf_confined_to_layer_and_group_norm_rows(bad):
+    """Documented (refnorm.layer_norm_forward): NaN/Inf in a row make that row's statistics and
+    output NaN; the same holds per (sample, group) for group norm. Other rows are unchanged."""
+    x = X.copy()
+    x[1, 2, 0] = bad
+    ln, ln0 = refnorm.layer_norm_forward(x, 5), refnorm.layer_norm_forward(X, 5)
+    assert np.all(np.isnan(ln.y[1, 2])) and np.isnan(ln.rstd[1, 2])
+    mask = np.ones((4, 3), bool)
+    mask[1, 2] = False
+    np.testing.assert_array_equal(ln.y[mask], ln0.y[mask])
+    gn, gn0 = refnorm.group_norm_forward(x, 3), refnorm.group_norm_forward(X, 3)
+    assert np.all(np.isnan(gn.y[1, 2])) and np.isnan(gn.mean[1, 2])
+    np.testing.assert_array_equal(gn.y[mask], gn0.y[mask])
+    # A NaN in dy reaches its group's dx through mean(g) and mean(g x_hat), and no other group.
+    dy = DY.copy()
+    dy[0, 1, 4] = np.nan
+    bw, bw0 = refnorm.layer_norm_backward(dy, X, 5), refnorm.layer_norm_backward(DY, X, 5)
+    assert np.all(np.isnan(bw.dx[0, 1]))
+    mask = np.ones((4, 3), bool)
+    mask[0, 1] = False
+    np.testing.assert_array_equal(bw.dx[mask], bw0.dx[mask])
+
+
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")
+def test_constant_group_with_zero_eps():
+    """eps = 0 and a constant group: var = 0, rstd = 1/sqrt(0) = +inf (IEEE 754-2019 §7.3, division
+    by zero) and y = 0 * inf = NaN (§7.2). With eps > 0 the same group normalizes to 0."""
+    x = X.copy()
+    x[:, 0, :] = 3.25
+    out = refnorm.batch_norm_forward(x, eps=0.0)
+    assert out.var[0] == 0.0 and np.isposinf(out.rstd[0])
+    assert np.all(np.isnan(out.y[:, 0]))
+    assert np.all(np.isfinite(out.y[:, 1:]))
+    np.testing.assert_array_equal(refnorm.batch_norm_forward(x, eps=1e-5).y[:, 0], 0.0)
