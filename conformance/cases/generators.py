@@ -18,7 +18,7 @@ __all__ = ["make_inputs", "group_index", "CANCELLATION"]
 #: Chan, Golub & LeVeque 1983), while the spread still covers several ULPs of the mean.
 CANCELLATION = {
     "float64": (1e8, 1e-2),
-    "float32": (1e4, 1e-1),
+    "float32": (1e4, 10.0),
     "float16": (2000.0, 8.0),
     "bfloat16": (1000.0, 16.0),
     "float8_e4m3fn": (64.0, 8.0),

@@ -1,0 +1,209 @@
+"""Compare one kernel output with the oracle under its bound: metrics first, verdict second.
+
+Strict by design: the actual array must have exactly the expected shape and the
+declared dtype (no broadcasting, no casting). NaN positions must match; +-Inf
+positions and signs must match; elements that are NaN (or the same infinity) in
+both are left out of the error metrics. An element is mismatched when its
+classes differ or |actual - expected| > bound. Relative error is |a - e| / |e|
+over e != 0. The failure message follows numpy.testing's wording.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import dtypes
+from .tolerances.bound import Bound, json_number
+
+__all__ = ["OutputResult", "compare_output", "ulp_histogram"]
+
+
+@dataclass
+class OutputResult:
+    """The comparison of one output: metrics, the worst element, the bound's summary and the verdict.
+
+    budget_used is max over elements of |err| / bound (inf where err > 0 and the bound is 0):
+    below 1 means every element is within its bound.
+    """
+
+    name: str
+    dtype: str
+    shape: tuple[int, ...]
+    n: int
+    mismatched: int
+    max_abs: float
+    max_rel: float
+    max_ulp: int
+    budget_used: float
+    worst_index: tuple[int, ...]
+    worst_actual: float
+    worst_expected: float
+    worst_bound: float
+    nan_mismatch: int
+    inf_mismatch: int
+    ulp_hist: dict[str, int] = field(default_factory=dict)
+    bound: dict[str, Any] = field(default_factory=dict)
+    passed: bool = False
+    message: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: tuples as lists, non-finite floats as "inf"/"-inf"/"nan"."""
+        d = asdict(self)
+        d["shape"] = list(self.shape)
+        d["worst_index"] = list(self.worst_index)
+        for k in ("max_abs", "max_rel", "budget_used", "worst_actual", "worst_expected", "worst_bound"):
+            d[k] = json_number(d[k])
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "OutputResult":
+        kw = {k: d[k] for k in cls.__dataclass_fields__ if k in d}
+        kw["shape"] = tuple(kw.get("shape", ()))
+        kw["worst_index"] = tuple(kw.get("worst_index", ()))
+        for k in ("max_abs", "max_rel", "budget_used", "worst_actual", "worst_expected", "worst_bound"):
+            if k in kw:
+                kw[k] = float(kw[k])
+        return cls(**kw)
+
+
+def ulp_histogram(ulps: np.ndarray) -> dict[str, int]:
+    """Counts of ULP distances in bins "0", "1", "2-3", "4-7", "8-15", ... (powers of two)."""
+    u = np.asarray(ulps, dtype=np.int64).ravel()
+    u = u[u >= 0]
+    hist: dict[str, int] = {}
+    if u.size == 0:
+        return hist
+    z = int(np.count_nonzero(u == 0))
+    if z:
+        hist["0"] = z
+    pos = u[u > 0]
+    if pos.size:
+        k = np.floor(np.log2(pos.astype(np.float64))).astype(np.int64)
+        # log2 of an int64 in float64 may round up at 2^k - 1 for large k: correct it exactly.
+        k = np.where((np.int64(1) << k) > pos, k - 1, k)
+        for b, c in zip(*np.unique(k, return_counts=True)):
+            lo, hi = 1 << int(b), (1 << (int(b) + 1)) - 1
+            hist[str(lo) if lo == hi else f"{lo}-{hi}"] = int(c)
+    return hist
+
+
+def _fmt(v: float) -> str:
+    return f"{v:.6g}"
+
+
+def _failed(name: str, dtype: str, expected: np.ndarray, bound: Bound, message: str,
+            shape: tuple[int, ...]) -> OutputResult:
+    n = int(expected.size)
+    return OutputResult(name=name, dtype=dtype, shape=tuple(shape), n=n, mismatched=n, max_abs=float("nan"),
+                        max_rel=float("nan"), max_ulp=-1, budget_used=float("inf"), worst_index=(),
+                        worst_actual=float("nan"), worst_expected=float("nan"), worst_bound=float("nan"),
+                        nan_mismatch=0, inf_mismatch=0, ulp_hist={}, bound=bound.summary(), passed=False,
+                        message=message)
+
+
+def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *, dtype: str) -> OutputResult:
+    """Compare ``actual`` (the kernel's output) with ``expected`` (the oracle's, float64) under ``bound``.
+
+    Parameters
+    ----------
+    name : the output's name.
+    actual : array of exactly ``expected``'s shape and of the format ``dtype``.
+    expected : the oracle's values.
+    bound : elementwise allowed |actual - expected| (broadcastable to the shape).
+    dtype : the declared format of the output (tolerances.output_dtype), in which ULPs are counted.
+
+    Returns
+    -------
+    OutputResult; ``passed`` is True when no element is mismatched.
+    """
+    exp = np.asarray(expected, dtype=np.float64)
+    want = dtypes.dtype_of(dtype)
+    if not isinstance(actual, np.ndarray) and not np.isscalar(actual):
+        try:
+            actual = np.asarray(actual)
+        except Exception as e:  # a foreign object the harness could not read
+            return _failed(name, dtype, exp, bound, f"output {name}: cannot read {type(actual).__name__} "
+                           f"as an array: {e}", exp.shape)
+    act = np.asarray(actual)
+    if act.shape != exp.shape:
+        return _failed(name, dtype, exp, bound,
+                       f"shape mismatch: actual {act.shape}, expected {exp.shape} (no broadcasting)", act.shape)
+    if act.dtype != want:
+        return _failed(name, dtype, exp, bound,
+                       f"dtype mismatch: actual {act.dtype}, declared {dtype} (no casting)", act.shape)
+
+    a = act.astype(np.float64)
+    b = np.broadcast_to(np.asarray(bound.values, dtype=np.float64), exp.shape)
+    n = int(exp.size)
+    a_nan, e_nan = np.isnan(a), np.isnan(exp)
+    a_inf, e_inf = np.isinf(a), np.isinf(exp)
+    nan_mis = a_nan != e_nan
+    inf_mis = ~nan_mis & ~a_nan & ((a_inf != e_inf) | (a_inf & e_inf & (np.sign(a) != np.sign(exp))))
+    both = np.isfinite(a) & np.isfinite(exp)
+
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        err = np.where(both, np.abs(a - exp), 0.0)
+        rel = np.where(both & (exp != 0), err / np.abs(exp), 0.0)
+        bad_bound = ~(b >= 0)  # NaN or negative: no bound, every error counts
+        ratio = np.where(err > 0, np.where(bad_bound | (b == 0), np.inf, err / b), 0.0)
+    over = both & (ratio > 1.0)
+    mism = over | nan_mis | inf_mis
+    k = int(np.count_nonzero(mism))
+
+    ulps = dtypes.ulp_distance(np.where(both, a, 0.0), np.where(both, exp, 0.0), dtype)
+    ulps = np.where(both, ulps, -1)
+    max_ulp = int(ulps.max()) if both.any() else 0
+    max_abs = float(err.max()) if n else 0.0
+    max_rel = float(rel.max()) if n else 0.0
+    budget = float(ratio.max()) if both.any() else 0.0
+    if nan_mis.any() or inf_mis.any():
+        budget = float("inf")
+
+    if both.any() and np.any(ratio > 0):
+        wi = np.unravel_index(int(np.argmax(np.where(both, ratio, -1.0))), exp.shape)
+    elif k:
+        wi = np.unravel_index(int(np.argmax(mism)), exp.shape)
+    elif n:
+        wi = np.unravel_index(0, exp.shape)
+    else:
+        wi = ()
+    if nan_mis.any() or inf_mis.any():
+        wi = np.unravel_index(int(np.argmax(nan_mis | inf_mis)), exp.shape)
+    wi = tuple(int(i) for i in wi)
+    w_act = float(a[wi]) if n else float("nan")
+    w_exp = float(exp[wi]) if n else float("nan")
+    w_b = float(b[wi]) if n else float("nan")
+
+    res = OutputResult(name=name, dtype=dtype, shape=tuple(exp.shape), n=n, mismatched=k, max_abs=max_abs,
+                       max_rel=max_rel, max_ulp=max_ulp, budget_used=budget, worst_index=wi, worst_actual=w_act,
+                       worst_expected=w_exp, worst_bound=w_b, nan_mismatch=int(np.count_nonzero(nan_mis)),
+                       inf_mismatch=int(np.count_nonzero(inf_mis)), ulp_hist=ulp_histogram(ulps),
+                       bound=bound.summary(), passed=k == 0, message="")
+    res.message = _message(res, bound)
+    return res
+
+
+def _message(r: OutputResult, bound: Bound) -> str:
+    head = f"{r.name} ({r.dtype}, shape {r.shape})"
+    if r.passed:
+        return (f"{head}: all {r.n} elements within the {bound.kind} bound; budget used {_fmt(r.budget_used)}, "
+                f"max ULP {r.max_ulp}")
+    pct = 100.0 * r.mismatched / r.n if r.n else 0.0
+    lines = [
+        f"Not within the {bound.kind} bound: {head}",
+        f"Mismatched elements: {r.mismatched} / {r.n} ({pct:.3g}%)",
+        f"Max absolute difference: {_fmt(r.max_abs)}",
+        f"Max relative difference: {_fmt(r.max_rel)}",
+        f"Max ULP distance ({r.dtype}): {r.max_ulp}",
+    ]
+    if r.nan_mismatch or r.inf_mismatch:
+        lines.append(f"NaN position mismatches: {r.nan_mismatch}; Inf position/sign mismatches: {r.inf_mismatch}")
+    idx = r.worst_index
+    lines.append(f"Worst element {idx}: actual {_fmt(r.worst_actual)}, expected {_fmt(r.worst_expected)}, "
+                 f"bound {_fmt(r.worst_bound)}")
+    lines.append(f"Budget used: {_fmt(r.budget_used)} (max |actual - expected| / bound)")
+    lines.append(f"Bound: {bound.formula}")
+    return "\n".join(lines)

@@ -1,0 +1,492 @@
+"""Per-output error bounds of a correct kernel, propagated to first order from the statistics.
+
+Symbols (per element, with the statistics of its group; docs/tolerances.md derives each line):
+u_s, u_p, u_a unit roundoffs of the storage, params and accumulation formats; u_o that of the
+output's own arithmetic (Precision.accumulate_for(output)); gamma_n, gamma_m the
+declared summation model's constants for the forward length n and the parameter-gradient
+length m; r, mu, v the float64 statistics, B_mu, dr = |r^ - r|, dbeta their error bounds
+(stats.py); g = dy w, m1 = mean(g), m2 = mean(g xhat), gc = g - m1 (g for RMS norm);
+eta_f = half the smallest subnormal of format f (rounding in the subnormal range).
+
+    y        |w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x| + |mu| + |x-mu|) + |b| + 2|y|)
+    dx       dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|)
+             + r dm1 + beta r |x-mu| dm2 + u_o (3 r (|g| + |m1|) + 3 beta r |x-mu| |m2| + 2 |dx|),
+             dm1 = (gamma_n + 2u_o) mean|g| + u_o |m1|,  dm2 = (gamma_n + 4u_o) mean|g xhat| + u_o |m2|
+    dx eval  |g| dr + 2 u_o r |g|
+    dweight  sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_o + 2u_a) sum_m |dy xhat|
+             + u_o |dweight|   (sum_gm: the elements of group g in the parameter's sum)
+    dbias    gamma_m sum_m |dy| + u_o |dbias|
+    running  |c_s| B_s + 3 u_o (|running| + |s|) + u_o |new|  for new = c_r running + c_s s
+
+and every output gets its final rounding: value (1 + u_f) + u_f |output| + eta_f, with f the
+storage format for y and dx, the params format for the others.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable
+
+import numpy as np
+
+from .. import dtypes
+from ..cases.model import Case
+from ..kernel import Conventions, Precision
+from .bound import Bound
+from .grouping import Grouping, grouping
+from .stats import ELEM, StatModel, batch_stats, eta, fixed_stats
+from .summation import capped, gamma
+
+__all__ = ["derive_bounds", "output_dtype", "OUTPUTS", "STAT_OUTPUTS"]
+
+STAT_OUTPUTS = ("mean", "rstd", "var", "var_unbiased", "std")
+OUTPUTS = ("y",) + STAT_OUTPUTS + ("running_mean", "running_var", "dx", "dweight", "dbias")
+_HAS_EVAL = ("batch_norm", "instance_norm")
+_INPUTS = ("x", "dy", "weight", "bias", "running_mean", "running_var")
+
+
+def output_dtype(output: str, precision: Precision) -> str:
+    """The format an output is stored in: storage for y and dx, params for statistics and parameter gradients."""
+    if output not in OUTPUTS:
+        raise ValueError(f"output is {output!r}, expected one of {', '.join(OUTPUTS)}")
+    p = precision.resolved()
+    return p.storage if output in ("y", "dx") else p.params
+
+
+_STATS_TXT = ("B_mu = (gamma_n + u_cv) mean|x| + 2 u_a |mu|; v^ in [v - B_v-, v + B_v+], "
+              "B_v- = (gamma_n + 4u_a) v + W, B_v+ = (gamma_n + 4u_a)(v + B_mu^2) + B_mu^2 + W, "
+              "W = {w}; dr from v^'s interval through {r} with (1+-u_a) on + eps and (1+-{e:g}u_a) "
+              "on each root or reciprocal")
+_STATS_RMS = ("v = mean(x^2), v^ within (gamma_n + 3u_a) v; dr from v^'s interval through {r} with "
+              "(1+-u_a) on + eps and (1+-{e:g}u_a) on each root or reciprocal")
+_STATS_EVAL = ("mu, v = running_mean, running_var (exact inputs), B_mu = 0; dr from {r} with "
+               "(1+-u_a) on + eps and (1+-{e:g}u_a) on each root or reciprocal")
+
+
+class _Context:
+    """Everything the per-output bounds share for one case."""
+
+    def __init__(self, case: Case, precision: Precision, conventions: Conventions,
+                 inputs64: dict[str, np.ndarray | None]):
+        self.case = case
+        self.p = precision.resolved()
+        self.conv = conventions
+        self.grp: Grouping = grouping(case)
+        self.u_s = dtypes.unit_roundoff(self.p.storage)
+        self.u_p = dtypes.unit_roundoff(self.p.params)
+        self.u_a = dtypes.unit_roundoff(self.p.accumulate)
+        self.eta_s = eta(self.p.storage)
+        self.eta_p = eta(self.p.params)
+        self.eta_a = eta(self.p.accumulate)
+        self.model = self.p.summation
+        self.lam = float(self.p.lam)
+        self.center = case.op != "rms_norm"
+        self.train = case.mode == "train" or case.op not in _HAS_EVAL
+        self.eps = float(case.eps)
+        self.placement = conventions.eps_placement
+        self.inp = inputs64
+        self.xv = self.grp.view(self._need("x", case.shape))
+        self.w = self._param("weight")
+        self.b = self._param("bias")
+        self._stats: dict[float, StatModel] = {}
+
+    # ------------------------------------------------------------- inputs
+    def _need(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
+        a = self.inp.get(name)
+        if a is None:
+            raise ValueError(f"inputs64[{name!r}] is None, expected a float64 array of shape {shape} "
+                             f"for case {self.case.id}")
+        a = np.asarray(a)
+        if a.shape != tuple(shape):
+            raise ValueError(f"inputs64[{name!r}] has shape {a.shape}, expected {tuple(shape)} "
+                             f"(the logical layout of case {self.case.id})")
+        return a.astype(np.float64, copy=False)
+
+    def _param(self, name: str) -> np.ndarray | None:
+        a = self.inp.get(name)
+        if a is None:
+            return None
+        return self.grp.param_in(self._need(name, self.grp.param_shape))
+
+    def dyv(self) -> np.ndarray:
+        return self.grp.view(self._need("dy", self.case.shape))
+
+    def w_abs(self):
+        return 1.0 if self.w is None else np.abs(self.w)
+
+    def b_abs(self):
+        return 0.0 if self.b is None else np.abs(self.b)
+
+    def u_out(self, name: str) -> float:
+        """Unit roundoff of an output's own arithmetic: Precision.accumulate_for(name)."""
+        return dtypes.unit_roundoff(self.p.accumulate_for(name))
+
+    # ------------------------------------------------------------- statistics
+    def stats(self, u: float | None = None) -> StatModel:
+        u = self.u_a if u is None else u
+        if u not in self._stats:
+            if self.train:
+                u_cv = u if u > self.u_s else 0.0
+                eta_a = max(self.eta_a, _eta_for(u))
+                self._stats[u] = batch_stats(self.xv, self.grp, center=self.center, eps=self.eps,
+                                             placement=self.placement, u=u, model=self.model, lam=self.lam,
+                                             u_cv=u_cv, eta_a=eta_a)
+            else:
+                c = self.grp.param_shape
+                rm = self.grp.param_in(self._need("running_mean", c))
+                rv = self.grp.param_in(self._need("running_var", c))
+                self._stats[u] = fixed_stats(rm, rv, eps=self.eps, placement=self.placement, u=u)
+        return self._stats[u]
+
+    def backward_stats(self) -> StatModel:
+        """The statistics a backward pass uses: its own, or the forward's saved ones in the params format."""
+        st = self.stats()
+        saved = set(self.conv.saved) if self.train else set()
+        if saved:
+            st = st.widened(self.u_p, self.eta_p, mean="mean" in saved, disp=bool(saved - {"mean"}))
+        return st
+
+    def r_text(self) -> str:
+        return "r = 1/sqrt(v + eps)" if self.placement == "inside" else "r = 1/(sqrt(v) + eps)"
+
+    def gamma_text(self, k: str = "n") -> str:
+        """The declared summation model's gamma for a sum of ``k`` terms, in words."""
+        model = {"probabilistic": f"exp(lam sqrt({k}) u + {k} u^2/(1-u)) - 1 (probabilistic, lam = {self.lam:g})",
+                 "pairwise": f"j u/(1 - j u), j = ceil(log2 {k}) (pairwise)",
+                 "worst": f"{k} u/(1 - {k} u) (worst case)"}[self.model]
+        return f"gamma_{k} = min({k} u/(1 - {k} u), {model})"
+
+    def stats_text(self, st: StatModel) -> str:
+        if not self.train:
+            return _STATS_EVAL.format(r=self.r_text(), e=ELEM)
+        if not self.center:
+            return _STATS_RMS.format(r=self.r_text(), e=ELEM) + "; " + self.gamma_text()
+        w = ("min(2 gamma_worst(n) |mu| mean|x-mu|, lam u_a |mu| sqrt(v))" if self.model == "probabilistic"
+             else "2 gamma_n |mu| mean|x-mu|")
+        return _STATS_TXT.format(w=w, r=self.r_text(), e=ELEM) + "; " + self.gamma_text()
+
+    # ------------------------------------------------------------- reporting
+    def worst_group(self, st: StatModel) -> tuple[int, ...] | None:
+        """Index (keepdims) of the worst-conditioned statistic: largest kappa, else largest dr/r."""
+        ok = np.isfinite(st.mu) & np.isfinite(st.v) & np.isfinite(st.r) & (st.r > 0)
+        if not ok.any():
+            return None
+        with np.errstate(invalid="ignore", divide="ignore"):
+            key = st.kappa if (self.center and self.train) else st.dr / st.r
+        key = np.where(ok & ~np.isnan(key), key, -1.0)
+        return np.unravel_index(int(np.argmax(key)), key.shape)
+
+    def terms(self, st: StatModel, u_o: float, **extra: float) -> dict[str, float]:
+        t: dict[str, float] = {
+            "u_s": self.u_s, "u_p": self.u_p, "u_a": self.u_a, "u_o": u_o,
+            "n": float(st.n if self.train else self.grp.n), "gamma_n": st.gamma, "lam": self.lam,
+            "eps": self.eps,
+        }
+        gi = self.worst_group(st)
+        if gi is not None:
+            # Reduced dims have length 1, so the keepdims order is the public statistic order.
+            flat = int(np.ravel_multi_index(gi, st.v.shape))
+            with np.errstate(invalid="ignore", divide="ignore"):
+                t.update({
+                    "statistic": float(flat),
+                    "kappa": float(np.broadcast_to(st.kappa, st.v.shape)[gi]),
+                    "mean": float(np.broadcast_to(st.mu, st.v.shape)[gi]),
+                    "var": float(st.v[gi]),
+                    "rstd": float(st.r[gi]),
+                    "mean_abs_x": float(np.broadcast_to(st.A, st.v.shape)[gi]),
+                    "B_mu": float(np.broadcast_to(st.b_mu, st.v.shape)[gi]),
+                    "B_var": float(np.broadcast_to(st.b_var, st.v.shape)[gi]),
+                    "W": float(np.broadcast_to(st.w_term, st.v.shape)[gi]),
+                    "dr_over_r": float(st.dr[gi] / st.r[gi]),
+                })
+        t["vacuous_groups"] = float(np.count_nonzero(st.vacuous & np.isfinite(st.v)))
+        t.update({k: float(v) for k, v in extra.items()})
+        return t
+
+
+def _eta_for(u: float) -> float:
+    for name in dtypes.FORMATS:
+        if dtypes.unit_roundoff(name) == u:
+            return eta(name)
+    return 0.0
+
+
+def _finite_max(a: np.ndarray) -> float:
+    f = a[np.isfinite(a)]
+    return float(f.max()) if f.size else math.nan
+
+
+def _final(pre: np.ndarray, value: np.ndarray, u_f: float, eta_f: float) -> np.ndarray:
+    """Rounding to the output format: the pre-rounding bound grows by u_f and the value adds u_f |value| + eta_f."""
+    return pre * (1.0 + u_f) + u_f * np.abs(value) + eta_f
+
+
+# ----------------------------------------------------------------- forward
+def _y(ctx: _Context, expected: np.ndarray):
+    st = ctx.stats()
+    u_o = ctx.u_out("y")
+    grp = ctx.grp
+    y = np.abs(grp.view(expected))
+    x = ctx.xv
+    w, b = ctx.w_abs(), ctx.b_abs()
+    dr = st.dr
+    r_up = st.r + dr
+    with np.errstate(invalid="ignore", over="ignore"):
+        d = np.abs(x - st.mu)
+        pre = (w * r_up * st.b_mu + w * d * dr
+               + u_o * (3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d) + b + 2.0 * y) + 4.0 * ctx.eta_a)
+        vals = _final(pre, y, ctx.u_s, ctx.eta_s)
+    if ctx.center:
+        f = ("|w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x| + |mu| + |x-mu|) + |b| + 2|y|)"
+             " + final u_s |y|")
+    else:
+        f = "|w| |x| dr + u_o (3 |w| (r+dr) 2|x| + |b| + 2|y|) + final u_s |y|"
+    return grp.unview(vals), f + "; " + ctx.stats_text(st), ctx.terms(st, u_o)
+
+
+def _stat_output(name: str):
+    def build(ctx: _Context, expected: np.ndarray):
+        if not ctx.train:
+            raise ValueError(f"output {name!r} is a saved batch statistic; case {ctx.case.id} is in eval mode")
+        if name == "mean" and not ctx.center:
+            raise ValueError("output 'mean' is not defined for rms_norm (no centering)")
+        u_o = ctx.u_out(name)
+        st = ctx.stats(u_o)
+        n = st.n
+        up, ep = ctx.u_p, ctx.eta_p
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            if name == "mean":
+                vals = _final(st.b_mu, st.mu, up, ep)
+                f = "B_mu + final u_p |mean|"
+            elif name == "rstd":
+                vals = _final(st.dr, st.r, up, ep)
+                f = "dr + final u_p r"
+            elif name == "var":
+                vals = _final(st.b_var, st.v, up, ep)
+                f = "max(B_v-, B_v+) + final u_p v"
+            elif name == "var_unbiased":
+                c = n / (n - 1) if n > 1 else math.nan
+                vals = _final(c * st.b_var + 2.0 * u_o * c * st.v, c * st.v, up, ep)
+                f = "n/(n-1) (max(B_v-, B_v+) + 2 u_o v) + final u_p n v/(n-1)"
+            else:  # std = sqrt(v + eps) or sqrt(v) + eps: 1/rstd
+                e = ELEM * u_o
+                v_lo = np.maximum(st.v - st.v_dn, 0.0)
+                v_hi = st.v + st.v_up
+                if ctx.placement == "inside":
+                    s = np.sqrt(st.v + ctx.eps)
+                    s_lo = np.sqrt((v_lo + ctx.eps) * (1 - u_o)) * (1 - e)
+                    s_hi = np.sqrt((v_hi + ctx.eps) * (1 + u_o)) * (1 + e)
+                    f = "|sqrt(v^ + eps) - sqrt(v + eps)| over v^'s interval + final u_p std"
+                else:
+                    s = np.sqrt(st.v) + ctx.eps
+                    s_lo = (np.sqrt(v_lo) * (1 - e) + ctx.eps) * (1 - u_o)
+                    s_hi = (np.sqrt(v_hi) * (1 + e) + ctx.eps) * (1 + u_o)
+                    f = "|sqrt(v^) - sqrt(v)| + eps rounding over v^'s interval + final u_p std"
+                vals = _final(np.maximum(s_hi - s, s - s_lo), s, up, ep)
+        return ctx.grp.stat_out(vals), f + "; " + ctx.stats_text(st), ctx.terms(st, u_o)
+
+    return build
+
+
+def _running(name: str):
+    def build(ctx: _Context, expected: np.ndarray):
+        case, conv, grp = ctx.case, ctx.conv, ctx.grp
+        if case.op not in _HAS_EVAL or not ctx.train:
+            raise ValueError(f"output {name!r} needs a training-mode batch_norm or instance_norm case, "
+                             f"received {case.id}")
+        u_o = ctx.u_out(name)
+        st = ctx.stats(u_o)
+        n = st.n
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            if name == "running_mean":
+                s, bs = st.mu, st.b_mu
+            elif conv.running_var_estimator == "unbiased":
+                c = n / (n - 1) if n > 1 else math.nan
+                s, bs = c * st.v, c * st.b_var + 2.0 * u_o * c * st.v
+            else:
+                s, bs = st.v, st.b_var
+            s = np.broadcast_to(s, st.v.shape)
+            bs = np.broadcast_to(bs, st.v.shape)
+            if case.op == "instance_norm":
+                # Per-channel average over the N instances (axis 0 of the view).
+                nb = st.v.shape[0]
+                s_avg = np.mean(s, axis=0, keepdims=True)
+                bs = (np.mean(bs, axis=0, keepdims=True)
+                      + capped(gamma(nb, u_o, ctx.model, ctx.lam)) * np.mean(np.abs(s), axis=0, keepdims=True)
+                      + u_o * np.abs(s_avg))
+                s = s_avg
+            run = grp.param_in(ctx._need(name, grp.param_shape))
+            new = grp.param_in(np.asarray(expected))
+            if case.momentum is None:
+                k = int(case.batches_seen)
+                c_s = 1.0 / (k + 1)
+                f_c = "c_s = 1/(batches_seen + 1)"
+            else:
+                mom = float(case.momentum)
+                c_s = mom if conv.momentum_convention == "new" else 1.0 - mom
+                f_c = "c_s = momentum" if conv.momentum_convention == "new" else "c_s = 1 - momentum"
+            pre = abs(c_s) * bs + 3.0 * u_o * (np.abs(run) + np.abs(s)) + u_o * np.abs(new)
+            vals = _final(pre, new, ctx.u_p, ctx.eta_p)
+        what = "B_mu" if name == "running_mean" else (
+            "n/(n-1) (max(B_v-, B_v+) + 2 u_o v)" if conv.running_var_estimator == "unbiased" else "max(B_v-, B_v+)")
+        if case.op == "instance_norm":
+            what = f"mean over N of {what} + gamma_N mean|s| + u_o |s|"
+        f = (f"|c_s| B_s + 3 u_o (|running| + |s|) + u_o |new| + final u_p |new|, B_s = {what}, {f_c}; "
+             + ctx.stats_text(st))
+        return grp.param_out(vals), f, ctx.terms(st, u_o, momentum_weight=c_s)
+
+    return build
+
+
+# ----------------------------------------------------------------- backward
+def _dx(ctx: _Context, expected: np.ndarray):
+    grp = ctx.grp
+    st = ctx.backward_stats() if ctx.train else ctx.stats()
+    u_o = ctx.u_out("dx")
+    dx = np.abs(grp.view(expected))
+    dy = ctx.dyv()
+    g = dy if ctx.w is None else dy * ctx.w
+    dr = st.dr
+    r_up = st.r + dr
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        if not ctx.train:
+            pre = np.abs(g) * dr + 2.0 * u_o * r_up * np.abs(g) + 2.0 * ctx.eta_a
+            vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
+            f = "|g| dr + 2 u_o (r+dr) |g| + final u_s |dx|, g = dy w; " + ctx.stats_text(st)
+            return grp.unview(vals), f, ctx.terms(st, u_o)
+        gam = capped(gamma(grp.n, u_o, ctx.model, ctx.lam))
+        xc = ctx.xv - st.mu
+        d = np.abs(xc)
+        xhat = xc * st.r
+        m1 = grp.gmean(g) if ctx.center else np.zeros_like(st.v)
+        m2 = grp.gmean(g * xhat)
+        gc = g - m1
+        ag = grp.gmean(np.abs(g))
+        agx = grp.gmean(np.abs(g * xhat))
+        dm1 = (gam + 2.0 * u_o) * ag + u_o * np.abs(m1)
+        dm2 = (gam + 4.0 * u_o) * agx + u_o * np.abs(m2)
+        beta_up = st.beta + st.dbeta
+        xm2 = np.abs(xhat * m2)
+        pre = dr * (np.abs(gc) + 2.0 * (beta_up / st.r) * xm2) + st.dbeta * xm2 + beta_up * r_up * d * dm2
+        if ctx.center:
+            pre = pre + beta_up * r_up * st.b_mu * (np.abs(m2) + np.abs(xhat) * np.abs(m1)) + r_up * dm1
+        pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
+                           + 2.0 * dx) + 6.0 * ctx.eta_a
+        vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
+    beta = "beta = r" if ctx.placement == "inside" else "beta = 1/sqrt(v)"
+    if ctx.center:
+        f = ("dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|) + r dm1"
+             " + beta r |x-mu| dm2 + u_o (3 r (|g| + |m1|) + 3 beta r |x-mu| |m2| + 2|dx|) + final u_s |dx|,"
+             " g = dy w, gc = g - m1, m1 = mean(g), m2 = mean(g xhat), dm1 = (gamma_n + 2u_o) mean|g| + u_o |m1|,"
+             f" dm2 = (gamma_n + 4u_o) mean|g xhat| + u_o |m2|, {beta}")
+    else:
+        f = ("dr (|g| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r |x| dm2 + u_o (3 r |g| + 3 beta r |x| |m2|"
+             " + 2|dx|) + final u_s |dx|, g = dy w, m2 = mean(g xhat), dm2 = (gamma_n + 4u_o) mean|g xhat|"
+             f" + u_o |m2|, {beta}")
+    saved = " (statistics saved in the params format: + u_p)" if (ctx.train and ctx.conv.saved) else ""
+    wg = ctx.worst_group(st)
+    extra = {}
+    if wg is not None:
+        extra = {"mean_abs_g": float(np.broadcast_to(ag, st.v.shape)[wg]),
+                 "mean_abs_g_xhat": float(np.broadcast_to(agx, st.v.shape)[wg])}
+    return grp.unview(vals), f + saved + "; " + ctx.stats_text(st), ctx.terms(st, u_o, **extra)
+
+
+def _dweight(ctx: _Context, expected: np.ndarray):
+    grp = ctx.grp
+    st = ctx.backward_stats() if ctx.train else ctx.stats()
+    u_w = ctx.u_out("dweight")
+    m = int(ctx.case.param_length)
+    gam = capped(gamma(m, u_w, ctx.model, ctx.lam))
+    dw = np.abs(grp.param_in(np.asarray(expected)))
+    dy = ctx.dyv()
+    # A kernel's statistics errors are one number per group, so to first order they move dweight by
+    # sum over groups of dr |sum_{group and parameter} dy (x-mu)| + (r+dr) B_mu |sum_{group and parameter} dy|:
+    # signed sums over the axes the group and the parameter share (all of them for batch norm, the
+    # spatial axes for group/instance norm, none for layer norm).
+    inner = tuple(a for a in grp.param_red if a in grp.red)
+    outer = tuple(a for a in grp.param_red if a not in grp.red)
+    with np.errstate(invalid="ignore", over="ignore"):
+        xc = ctx.xv - st.mu
+        s_dyx = np.sum(dy * xc, axis=inner, keepdims=True) if inner else dy * xc
+        s_dy = np.sum(dy, axis=inner, keepdims=True) if inner else dy
+        per = st.dr * np.abs(s_dyx) + (st.r + st.dr) * st.b_mu * np.abs(s_dy)
+        per = np.sum(np.broadcast_to(per, np.broadcast_shapes(per.shape, st.v.shape)), axis=outer, keepdims=True) \
+            if outer else per
+        sxh = grp.psum(np.abs(dy * xc) * st.r)
+        pre = per + (gam + u_w + 2.0 * ctx.u_a) * sxh + u_w * dw + m * ctx.eta_a
+        vals = _final(pre, dw, ctx.u_p, ctx.eta_p)
+    f = ("sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_w + 2u_a) sum_m |dy xhat|"
+         " + u_w |dweight| + final u_p |dweight|, sum_gm over the elements of group g in the parameter's sum,"
+         " u_w = accumulation of dweight; " + ctx.gamma_text("m") + "; " + ctx.stats_text(st))
+    return grp.param_out(vals), f, ctx.terms(st, u_w, m=float(m), gamma_m=gamma(m, u_w, ctx.model, ctx.lam),
+                                             sum_abs_dy_xhat=_finite_max(sxh))
+
+
+def _dbias(ctx: _Context, expected: np.ndarray):
+    grp = ctx.grp
+    st = ctx.stats()
+    u_b = ctx.u_out("dbias")
+    m = int(ctx.case.param_length)
+    gam = capped(gamma(m, u_b, ctx.model, ctx.lam))
+    db = np.abs(grp.param_in(np.asarray(expected)))
+    with np.errstate(invalid="ignore", over="ignore"):
+        s = grp.psum(np.abs(ctx.dyv()))
+        pre = gam * s + u_b * db
+        vals = _final(pre, db, ctx.u_p, ctx.eta_p)
+    f = ("gamma_m sum_m |dy| + u_b |dbias| + final u_p |dbias|, u_b = accumulation of dbias; "
+         + ctx.gamma_text("m"))
+    return grp.param_out(vals), f, ctx.terms(st, u_b, m=float(m), gamma_m=gamma(m, u_b, ctx.model, ctx.lam),
+                                             sum_abs_dy=_finite_max(s))
+
+
+_BUILDERS: dict[str, Callable] = {"y": _y, "dx": _dx, "dweight": _dweight, "dbias": _dbias,
+                                  "running_mean": _running("running_mean"), "running_var": _running("running_var")}
+_BUILDERS.update({s: _stat_output(s) for s in STAT_OUTPUTS})
+
+
+def derive_bounds(case: Case, precision: Precision, conventions: Conventions,
+                  inputs64: dict[str, np.ndarray | None],
+                  expected: dict[str, np.ndarray]) -> dict[str, Bound]:
+    """One derived Bound per output in ``expected`` (see the module docstring and docs/tolerances.md).
+
+    Parameters
+    ----------
+    case : the case (op, shape, layout, eps, mode, momentum, ...).
+    precision : the kernel's Precision for the case's dtype (resolved or not).
+    conventions : the kernel's Conventions (eps placement, saved statistics, running-variance estimator).
+    inputs64 : x, dy, weight, bias, running_mean, running_var as float64, exactly the values the kernel
+        received, in the logical layout of ``case.shape`` (None where absent).
+    expected : the oracle's values of the outputs to check, by name.
+
+    Returns
+    -------
+    dict name -> Bound whose values have the expected output's shape; 0 where the oracle's
+    value is NaN or infinite (the comparison judges those positions by their class).
+    """
+    if not isinstance(expected, dict) or not expected:
+        raise ValueError(f"expected is {type(expected).__name__}, expected a non-empty dict of oracle outputs")
+    unknown = [k for k in expected if k not in _BUILDERS]
+    if unknown:
+        raise ValueError(f"expected has outputs {unknown}, expected names from {', '.join(OUTPUTS)}")
+    bad = [k for k in inputs64 if k not in _INPUTS]
+    if bad:
+        raise ValueError(f"inputs64 has keys {bad}, expected names from {', '.join(_INPUTS)}")
+    ctx = _Context(case, precision, conventions, inputs64)
+    out: dict[str, Bound] = {}
+    for name, exp in expected.items():
+        e = np.asarray(exp, dtype=np.float64)
+        vals, formula, terms = _BUILDERS[name](ctx, e)
+        vals = np.asarray(vals, dtype=np.float64)
+        if vals.shape != e.shape:
+            vals = np.broadcast_to(vals, e.shape) if vals.size == 1 else vals.reshape(e.shape)
+        fin = np.isfinite(e)
+        bad_b = fin & ~np.isfinite(vals)
+        vals = np.where(fin, vals, 0.0)
+        if bad_b.any():  # overflow inside the bound itself (values near float64's range): no bound
+            vals = np.where(bad_b, np.finfo(np.float64).max, vals)
+        terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
+        scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
+        terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
+        out[name] = Bound(output=name, values=np.ascontiguousarray(vals), formula=formula, terms=terms)
+    return out
