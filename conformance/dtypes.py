@@ -59,17 +59,17 @@ def round_to(a: np.ndarray, name: str) -> np.ndarray:
 
 
 _INT = {1: np.int8, 2: np.int16, 4: np.int32, 8: np.int64}
-_UINT = {1: np.uint8, 2: np.uint16, 4: np.uint32, 8: np.uint64}
 
 
 def _ordinal(a: np.ndarray) -> np.ndarray:
-    """Map floats to integers so that adjacent representable values differ by 1 (+0 and -0 both map to 0)."""
+    """Map floats to integers so that adjacent representable values differ by 1 (+0 and -0 both map to 0).
+
+    Sign-magnitude bit patterns, read as two's-complement integers i, are in order for i >= 0;
+    for i < 0 the order reverses, and MIN - i puts them just below zero.
+    """
     size = a.dtype.itemsize
-    bits = a.view(_UINT[size]).astype(np.int64) if size < 8 else a.view(np.int64)
-    sign_bit = 1 << (8 * size - 1)
-    mag = bits & (sign_bit - 1) if size < 8 else bits & np.int64(0x7FFFFFFFFFFFFFFF)
-    neg = (bits & sign_bit) != 0 if size < 8 else bits < 0
-    return np.where(neg, -mag, mag).astype(np.int64)
+    i = a.view(_INT[size]).astype(np.int64)
+    return np.where(i < 0, np.int64(-(1 << (8 * size - 1))) - i, i)
 
 
 def ulp_distance(a: np.ndarray, b: np.ndarray, name: str) -> np.ndarray:
