@@ -38,9 +38,10 @@ class Library:
     """A reference library: display name, adapter module, the modules it needs, and how its workers start.
 
     spawn=True starts each worker fresh from the adapter's spec (seconds of import per worker, but
-    nothing inherited: TensorFlow is not safe to fork once its runtime has started); spawn=False
-    forks from this process, where the adapter is already loaded (torch supports fork, as its
-    DataLoader workers rely on).
+    nothing inherited); spawn=False forks from this process, where the adapter is already loaded.
+    Both libraries spawn: TensorFlow is not safe to fork once its runtime has started, and torch's
+    CPU kernels can deadlock in a child forked after its intra-op thread pool has run (seen here:
+    peer cases forked from a process that had run torch ops hung until their timeout).
     """
 
     name: str
@@ -50,7 +51,7 @@ class Library:
 
 
 LIBRARIES = (
-    Library("torch CPU", "conformance.adapters.torch_cpu", ("torch",)),
+    Library("torch CPU", "conformance.adapters.torch_cpu", ("torch",), spawn=True),
     Library("TF/Keras CPU", "conformance.adapters.keras_cpu", ("tensorflow", "keras"), spawn=True),
 )
 

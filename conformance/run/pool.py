@@ -27,6 +27,9 @@ from ..results import CaseResult
 
 __all__ = ["WorkerPool"]
 
+#: Seconds a worker may take to import and load the kernel before its first case.
+_STARTUP_TIMEOUT = 600.0
+
 
 def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed: int,
                  overrides: Mapping[str, tuple[float, float]] | None) -> None:
@@ -39,7 +42,13 @@ def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed
     from .execute import execute_case
 
     if kernel is None:
-        kernel = load_kernel(spec)  # the parent already loaded it once, so this succeeds
+        try:
+            kernel = load_kernel(spec)
+        except Exception as e:  # the parent loaded it once; say why it failed here
+            conn.send(("load_error", f"{type(e).__name__}: {e}"))
+            return
+    # Tell the parent this worker is ready, so that start-up (imports) never counts against a case's timeout.
+    conn.send(("ready", os.getpid()))
     while True:
         try:
             msg = conn.recv()
@@ -92,6 +101,17 @@ class WorkerPool:
                               daemon=True)
         p.start()
         child.close()
+        if not parent.poll(_STARTUP_TIMEOUT):
+            p.kill()
+            raise RuntimeError(f"a worker process did not start within {_STARTUP_TIMEOUT:g} s")
+        try:
+            tag, info = parent.recv()
+        except EOFError:
+            p.join(timeout=5)
+            raise RuntimeError(f"a worker process died while starting (exit code {p.exitcode})") from None
+        if tag != "ready":
+            p.join(timeout=5)
+            raise RuntimeError(f"a worker process could not load the kernel: {info}")
         return _Worker(proc=p, conn=parent)
 
     def _stop(self, w: _Worker, kill: bool = False) -> None:
