@@ -78,8 +78,9 @@ def _feature_shapes(tier: str) -> list[tuple[tuple[int, ...], int]]:
 def _base(op: str, dtype: str, shape: tuple[int, ...], layout: str, groups: int, norm_ndim: int, tier: str) -> Case:
     if layout == "channels_last":
         shape = (shape[0],) + tuple(shape[2:]) + (shape[1],)
+    # RMS norm has no bias in the libraries that define it (Zhang & Sennrich 2019, eq. 4; torch, Keras).
     return Case(op=op, dtype=dtype, shape=shape, layout=layout, groups=groups if op == "group_norm" else 0,
-                norm_ndim=norm_ndim, tier=tier)
+                norm_ndim=norm_ndim, tier=tier, bias="none" if op == "rms_norm" else "random")
 
 
 def _shape_cases(op: str, dtype: str, tier: str) -> Iterator[Case]:
@@ -116,7 +117,7 @@ def _param_cases(op: str, dtype: str, tier: str) -> Iterator[Case]:
     m = _mid(op, dtype, tier)
     combos = [("none", "none"), ("random", "none"), ("zero", "random"), ("negative", "zero"), ("ones", "random")]
     if op == "rms_norm":
-        combos = [("none", "none"), ("zero", "none"), ("negative", "none"), ("ones", "none")]
+        combos = [("none", "none"), ("zero", "none"), ("negative", "none"), ("ones", "none"), ("random", "random")]
     for w, b in combos:
         yield replace(m, weight=w, bias=b)
     for eps in (0.0, 1e-3, 1e-1):
