@@ -53,7 +53,13 @@ def _diagnosis(doc: dict) -> list[str]:
     return lines
 
 
-def _check(spec: str, out: Path, workers: int, tier: str, report: bool) -> dict:
+def _peer_names(peers: dict | None) -> str:
+    if not peers:
+        return ""
+    return ", ".join(lib["name"] for lib in peers.get("libraries", []) if lib.get("status") == "ran")
+
+
+def _check(spec: str, out: Path, workers: int, tier: str, report: bool, peers_enabled: bool) -> dict:
     kernel = load_kernel(spec)
     print(f"\n=== {kernel.name}  ({kernel.notes})")
     doc = run_check(kernel, RunOptions(tier=tier, workers=workers, command=f"refnorm check {spec} --tier {tier}"),
@@ -72,8 +78,9 @@ def _check(spec: str, out: Path, workers: int, tier: str, report: bool) -> dict:
             rep = None
         if rep is not None and hasattr(rep, "write_report"):
             rdir = out / f"{stem}-report"
-            rep.write_report(doc, rdir, peers=False)
-            print(f"report: {_rel(rdir)}/")
+            peers, note = rep.gather_peers(doc, peers_enabled, quiet=True)
+            rep.write_report(doc, rdir, peers=peers, peers_note=note)
+            print(f"report: {_rel(rdir)}/report.html (with {_peer_names(peers) or 'no reference libraries'})")
     return doc
 
 
@@ -83,6 +90,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--tier", default="standard")
     ap.add_argument("--no-report", action="store_true")
+    ap.add_argument("--no-peers", action="store_true", help="do not run torch/Keras on the same cases for the reports")
     args = ap.parse_args(argv)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -93,11 +101,11 @@ def main(argv: list[str] | None = None) -> int:
     c_kernel = HERE / "c_kernel" / "kernel.py"
     verdicts = {}
     for spec in specs:
-        doc = _check(spec, out, args.workers, args.tier, not args.no_report)
+        doc = _check(spec, out, args.workers, args.tier, not args.no_report, not args.no_peers)
         verdicts[doc["kernel"]["name"]] = doc["verdict"]
     if c_kernel.exists():
         try:
-            doc = _check(f"{c_kernel}:layer_norm", out, args.workers, args.tier, not args.no_report)
+            doc = _check(f"{c_kernel}:layer_norm", out, args.workers, args.tier, not args.no_report, False)
             verdicts[doc["kernel"]["name"]] = doc["verdict"]
         except Exception as e:  # no compiler, or the library was not built
             print(f"\n(the C example kernel was not checked: {e})")

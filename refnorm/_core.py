@@ -16,15 +16,37 @@ the square root (r = (v + eps)^-1/2) and beta = 1 / sqrt(v) when eps is added
 to the standard deviation (r = 1 / (sqrt(v) + eps)). Without centering (RMS
 norm) mean(g) is dropped and v is the mean square. Ioffe & Szegedy 2015,
 "Batch Normalization", §3 gives the train-mode gradient for the standard form.
+
+Two ways to evaluate the same formulas:
+
+* the composable functions (:func:`batch_stats`, :func:`normalized`,
+  :func:`affine`, :func:`backward`), each a whole-array NumPy expression;
+* :func:`fused_forward` and :func:`fused_backward`, which the public
+  operations use. The groups are cut into chunks of about 2 MiB along one
+  non-reduced axis (:mod:`refnorm._parallel`); every step runs on a chunk
+  while it is in cache, in y's or dx's own memory and one scratch buffer,
+  on a few threads. Each group's reductions run on one thread in one fixed
+  order, so the bits do not depend on the thread count. Sums along the
+  contiguous inner axis are BLAS dots (``np.vecdot``; a vector of ones for a
+  plain sum) over blocks of at most 256 elements, the block results summed
+  pairwise: one pass and no product temporary, and as accurate as NumPy's
+  pairwise sum (measured here on normal data: within 2.4 units of roundoff
+  times sum |terms|, like np.sum; ``np.einsum``, which accumulates in one
+  running sum, reached 80). Where the weight is constant along the inner
+  axes (batch, group, instance norm) the formulas are rearranged, without
+  changing them, to save passes (see the two functions).
 """
 
 from __future__ import annotations
 
+import functools
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from ._moments import Moments, group_size, mean_square, moments
+from ._parallel import chunk_bounds, run_chunks
 
 
 @dataclass(frozen=True)
@@ -42,6 +64,28 @@ def inv_std(var: np.ndarray, eps: float, placement: str) -> np.ndarray:
     if placement == "inside":
         return 1.0 / np.sqrt(var + eps)
     return 1.0 / (np.sqrt(var) + eps)
+
+
+def _beta_outside(var: np.ndarray) -> np.ndarray:
+    """beta = 1/sqrt(var) for eps outside the root, 0 where var = 0.
+
+    There x - mean = 0 for every element, so the term beta * k * xhat vanishes
+    whatever beta is; 1/sqrt(0) = inf would turn it into inf * 0 = NaN.
+    """
+    with np.errstate(divide="ignore"):
+        beta = 1.0 / np.sqrt(var)
+    return np.where(var == 0, 0.0, beta)
+
+
+def _correction(s1: np.ndarray, m0: np.ndarray, n: int) -> np.ndarray:
+    """c = sum(x - m0) / n, and 0 where m0 is +-Inf or NaN.
+
+    With an infinite m0, x - m0 is NaN for the infinite elements (Inf - Inf);
+    the mean is m0 itself by IEEE 754 arithmetic (e.g. -Inf for a group holding
+    -Inf and finite values), which c = 0 keeps.
+    """
+    c = s1 / n
+    return np.where(np.isfinite(m0), c, 0.0)
 
 
 def batch_stats(x: np.ndarray, red: tuple[int, ...], eps: float, placement: str, center: bool) -> Stats:
@@ -109,7 +153,7 @@ def backward(
     if placement == "inside":
         beta = st.rstd
     else:
-        beta = 1.0 / np.sqrt(st.var)
+        beta = _beta_outside(st.var)
     dx = st.rstd * gc - (beta * k) * xhat
     return dx, dweight, dbias
 
@@ -132,3 +176,390 @@ def stats_for_backward(
     else:
         var = (1.0 / rstd - eps) ** 2
     return Stats(mean=mean, var=var, rstd=rstd)
+
+
+# --- fused, chunked evaluation -------------------------------------------------------------
+
+# Sums along the contiguous inner axis run as BLAS dots (np.vecdot) over
+# blocks of at most _DOT_BLOCK elements, whose results are then summed
+# pairwise. Short blocks keep each dot's own accumulation short (accuracy),
+# keep OpenBLAS's dot single-threaded (it splits vectors longer than 10000
+# over its own threads, which would tie the bits to its thread count), and
+# give NumPy enough outer iterations to release the GIL: a gufunc such as
+# vecdot holds it unless its outer loop runs more than about 500 times
+# (measured here, NumPy 2.4), which serialises the chunk threads.
+_DOT_BLOCK = 256
+# Inner axes shorter than this reduce with np.sum: a dot per few elements
+# costs more in calls than it saves.
+_DOT_MIN = 64
+# NumPy runs a gufunc's loop without the GIL only above this many outer
+# iterations (NPY_BEGIN_THREADS_THRESHOLDED, 500; measured: 448 rows held it).
+_GIL_ROWS = 512
+# Chunks whose contiguous runs would be shorter than this (e.g. channels-last
+# batch norm cut along the channels) are not worth cutting: one chunk instead.
+_MIN_RUN = 256
+
+
+def _split_axis(shape: tuple[int, ...], red: tuple[int, ...]) -> int | None:
+    """The non-reduced axis to cut into chunks: the longest one (outermost on ties), None if all are 1."""
+    best = None
+    for a, d in enumerate(shape):
+        if a not in red and d > 1 and (best is None or d > shape[best]):
+            best = a
+    return best
+
+
+def _chunking(shape: tuple[int, ...], red: tuple[int, ...]) -> tuple[int | None, list[tuple[int, int]]]:
+    """(split axis, chunk bounds along it); (None, one chunk) when cutting does not pay."""
+    s = _split_axis(shape, red)
+    if s is None:
+        return None, [(0, 1)]
+    total = math.prod(shape)
+    bounds = chunk_bounds(shape[s], total // shape[s])
+    per = bounds[0][1] - bounds[0][0]
+    if len(bounds) > 1 and per * math.prod(shape[s + 1:]) < _MIN_RUN:
+        return None, [(0, 1)]
+    return s, bounds
+
+
+def _index(s: int | None, lo: int, hi: int) -> tuple:
+    return (Ellipsis,) if s is None else (slice(None),) * s + (slice(lo, hi),)
+
+
+def _take(a: np.ndarray | None, s: int | None, lo: int, hi: int) -> np.ndarray | None:
+    """The chunk's part of a broadcastable operand (the whole operand where it does not vary along s)."""
+    if a is None or s is None or a.shape[s] == 1:
+        return a
+    return a[_index(s, lo, hi)]
+
+
+@functools.lru_cache(maxsize=256)
+def _dot_block(length: int, rows: int) -> int | None:
+    """The block length for dots along an inner axis of ``length``, over ``rows`` inner rows.
+
+    The largest divisor of ``length`` in [_DOT_MIN, _DOT_BLOCK] that still
+    gives more than _GIL_ROWS blocks in all (so NumPy releases the GIL), else
+    the smallest divisor in that range; None if there is none (np.sum then).
+    """
+    divisors = [length // k for k in range(math.ceil(length / _DOT_BLOCK), length // _DOT_MIN + 1)
+                if length % k == 0]
+    if not divisors:
+        return None
+    for d in divisors:  # decreasing
+        if rows * (length // d) > _GIL_ROWS:
+            return d
+    return divisors[-1]
+
+
+def _inner_block(shape: tuple[int, ...], s: int | None, bounds: list[tuple[int, int]]) -> int | None:
+    """One dot block length for every chunk of a call (so equal groups sum alike in any chunk)."""
+    length = shape[-1]
+    rows = math.prod(shape) // max(1, length)
+    if s is not None:
+        rows = rows // shape[s] * min(hi - lo for lo, hi in bounds)
+    return _dot_block(length, rows)
+
+
+def _reduce(a: np.ndarray, b: np.ndarray | None, axes: tuple[int, ...], block: int | None,
+            tmp: np.ndarray | None = None) -> np.ndarray:
+    """sum(a * b) (sum(a) for b None) over ``axes``, keepdims, without a full temporary where possible.
+
+    a and b have the same shape. With the last axis reduced and a ``block``
+    length (see :func:`_inner_block`): a BLAS dot per block of the inner
+    rows (np.vecdot, with a vector of ones for a plain sum), the block
+    results summed pairwise, then a NumPy sum over the other axes. Otherwise
+    np.sum, of the product written to ``tmp`` (or a new array).
+    """
+    last = a.ndim - 1
+    if block is None or last not in axes:
+        return np.sum(a if b is None else np.multiply(a, b, out=tmp), axis=axes, keepdims=True)
+    rest = tuple(ax for ax in axes if ax != last)
+    split = a.shape[:last] + (a.shape[last] // block, block)
+    p = np.vecdot(a.reshape(split), np.ones(block) if b is None else b.reshape(split))
+    p = np.sum(p, axis=-1)
+    if rest:
+        p = _sum_last(p, rest)
+    return p[..., np.newaxis]
+
+
+def _sum_last(p: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
+    """np.sum over ``axes`` (keepdims) of a small array, each group's terms as one contiguous pairwise sum.
+
+    The order of the terms then does not depend on how many groups share the
+    array (NumPy picks pairwise or running sums by layout), so a group gives
+    the same bits in whichever chunk it lands.
+    """
+    keep = [i for i in range(p.ndim) if i not in axes]
+    q = np.ascontiguousarray(np.transpose(p, keep + list(axes)))
+    q = np.sum(q.reshape(q.shape[:len(keep)] + (-1,)), axis=-1)
+    return q.reshape(tuple(1 if i in axes else d for i, d in enumerate(p.shape)))
+
+
+def _chunk_dev(xc: np.ndarray, red: tuple[int, ...], n: int, eps: float, placement: str, center: bool,
+               buf: np.ndarray, block: int | None) -> tuple:
+    """Batch statistics of one chunk and the deviations they leave: (dev, m0, c, m2, var, rstd).
+
+    With centering, the steps of :func:`moments` and :func:`inv_std`:
+    dev = x - m0 is written to ``buf`` and x - mean = dev - c. Without,
+    var is the mean square of :func:`mean_square`, dev is x itself (read
+    only) and m0, c, m2 are None.
+    """
+    if center:
+        m0 = _reduce(xc, None, red, block)
+        m0 /= n
+        dev = np.subtract(xc, m0, out=buf)
+        s1 = _reduce(dev, None, red, block)
+        c = _correction(s1, m0, n)
+        s2 = _reduce(dev, dev, red, block)
+        # s1 * c is tiny next to s2 unless m0 was poor; it is never clamped.
+        m2 = s2 - s1 * c
+        var = m2 / n
+        return dev, m0, c, m2, var, inv_std(var, eps, placement)
+    var = _reduce(xc, xc, red, block)
+    var /= n
+    return xc, None, None, None, var, inv_std(var, eps, placement)
+
+
+def _given_dev(xc: np.ndarray, mean: np.ndarray | None, buf: np.ndarray) -> np.ndarray:
+    """x - mean with a given mean (in ``buf``), or x itself (read only) without one."""
+    return xc if mean is None else np.subtract(xc, mean, out=buf)
+
+
+def _small(a: np.ndarray, b: np.ndarray, than: int) -> bool:
+    """Whether a * b broadcasts to far fewer elements than ``than`` (then it is worth forming)."""
+    return 16 * math.prod(np.broadcast_shapes(a.shape, b.shape)) <= than
+
+
+def fused_forward(
+    x: np.ndarray,
+    red: tuple[int, ...],
+    w: np.ndarray | None,
+    b: np.ndarray | None,
+    *,
+    eps: float,
+    placement: str,
+    center: bool,
+    stats: Stats | None = None,
+) -> tuple[np.ndarray, Stats]:
+    """(y, st): y = affine(normalized(x, st), w, b), computed chunk by chunk in y's own memory.
+
+    st is ``stats`` when given (e.g. :func:`fixed_stats`), else the batch
+    statistics of :func:`batch_stats` over ``red``; their ``moments`` carry
+    m0, c, m2 and n but no ``dev`` (it is never held for the whole array).
+    Where r * w is small (the weight constant along the inner axes: batch,
+    group and instance norm, and no weight) y = ((dev - c) r) w + b is
+    evaluated as dev (r w) + (b - c r w), two passes instead of four.
+    Memory: y and the keepdims statistics.
+    """
+    shape = x.shape
+    n = group_size(shape, red)
+    y = np.empty(shape)
+    s, bounds = _chunking(shape, red)
+    block = _inner_block(shape, s, bounds)
+    kshape = tuple(1 if i in red else d for i, d in enumerate(shape))
+    if stats is None:
+        var, rstd = np.empty(kshape), np.empty(kshape)
+        m0, c, m2 = (np.empty(kshape), np.empty(kshape), np.empty(kshape)) if center else (None, None, None)
+
+    def work(lo: int, hi: int) -> None:
+        ix = _index(s, lo, hi)
+        xc, yc = x[ix], y[ix]
+        if stats is None:
+            dev, m0c, cc, m2c, vc, rc = _chunk_dev(xc, red, n, eps, placement, center, yc, block)
+            var[ix], rstd[ix] = vc, rc
+            if center:
+                m0[ix], c[ix], m2[ix] = m0c, cc, m2c
+        else:
+            rc, cc = _take(stats.rstd, s, lo, hi), None
+            dev = _given_dev(xc, _take(stats.mean, s, lo, hi), yc)
+        wc, bc = _take(w, s, lo, hi), _take(b, s, lo, hi)
+        bad = ~np.isfinite(rc)
+        if bad.any() and (wc is None or _small(rc, wc, yc.size)):
+            # Groups with r = inf or NaN take the direct formula below (dev r - c r would give
+            # inf - inf where (dev - c) r = +-inf); every other group keeps the two-pass form, so
+            # its bits do not depend on what its neighbours in the chunk hold.
+            direct = np.subtract(dev, cc) if cc is not None else np.array(dev, copy=True)
+            direct *= rc
+            if wc is not None:
+                direct *= wc
+            if bc is not None:
+                direct += bc
+            rc = np.where(bad, 0.0, rc)
+        else:
+            direct = None
+        if wc is None or _small(rc, wc, yc.size):
+            # ((dev - c) r) w + b = dev (r w) + (b - c r w), the per-group terms formed first.
+            scale = rc if wc is None else rc * wc
+            shift = None if cc is None else -cc * scale
+            if bc is not None and (shift is None or _small(shift, bc, yc.size)):
+                shift, bc = (bc if shift is None else shift + bc), None
+            np.multiply(dev, scale, out=yc)
+            if shift is not None:
+                yc += shift
+            if bc is not None:
+                yc += bc
+            if direct is not None:
+                np.copyto(yc, direct, where=np.broadcast_to(bad, yc.shape))
+            return
+        if dev is yc:
+            if cc is not None:
+                yc -= cc  # (x - m0) - c
+            yc *= rc
+        else:
+            np.multiply(dev, rc, out=yc)
+        if wc is not None:
+            yc *= wc
+        if bc is not None:
+            yc += bc
+
+    run_chunks(work, bounds, x.size)
+    if stats is not None:
+        return y, stats
+    if center:
+        mom = Moments(m0=m0, c=c, dev=None, m2=m2, n=n)
+        return y, Stats(mean=mom.mean, var=var, rstd=rstd, moments=mom)
+    return y, Stats(mean=None, var=var, rstd=rstd)
+
+
+def fused_backward(
+    dy: np.ndarray,
+    x: np.ndarray,
+    red: tuple[int, ...],
+    w: np.ndarray | None,
+    param_red: tuple[int, ...],
+    *,
+    eps: float,
+    placement: str,
+    center: bool,
+    training: bool,
+    stats: Stats | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(dx, dweight, dbias) = backward(dy, normalized(x, st), st, red, w, param_red, ...), chunk by chunk.
+
+    st is ``stats`` when given (saved statistics, or :func:`fixed_stats` in
+    eval mode), else the batch statistics of x, recomputed per chunk as
+    :func:`batch_stats` does (double-float mean m0 + c). The gradient g is
+    centred in dx's own memory (with the correction pass of _centered_mean).
+
+    Where dweight/dbias also reduce over some of the statistics' axes
+    (``common``: all of them for batch norm, the spatial ones for group norm),
+    r and c are constant there and xhat = (dev - c) r is never formed:
+
+        sum(dy xhat) = r (sum(dy dev) - c sum(dy))    over common, then the rest
+        sum(g)       = sum(weight * sum(dy))          sum(dy) shared with dbias
+        k            = r mean(gc dev)                 (sum(gc) = 0)
+        dx           = r (gc - beta k (dev - c))
+
+    the formulas of :func:`backward` rearranged, with fewer passes over the
+    data. Otherwise (layer and RMS norm, whose dweight sums across rows)
+    xhat is formed as in :func:`normalized`. Partial dweight/dbias sums that
+    cross chunks are added in chunk order. Memory: dx, plus one scratch
+    buffer per chunk.
+    """
+    shape = x.shape
+    n = group_size(shape, red)
+    dx = np.empty(shape)
+    s, bounds = _chunking(shape, red)
+    block = _inner_block(shape, s, bounds)
+    pshape = tuple(1 if i in param_red else d for i, d in enumerate(shape))
+    cross = s is None or s in param_red
+    if not cross:
+        dweight, dbias = np.empty(pshape), np.empty(pshape)
+    common = tuple(a for a in red if a in param_red)  # the weight is constant along these
+    red_rest = tuple(a for a in red if a not in common)
+    param_rest = tuple(a for a in param_red if a not in common)
+
+    def work(lo: int, hi: int):
+        ix = _index(s, lo, hi)
+        xc, dyc, dxc = x[ix], dy[ix], dx[ix]
+        wc = _take(w, s, lo, hi)
+        buf = np.empty(xc.shape)
+        if stats is None:
+            dev, _, cc, _, vc, rc = _chunk_dev(xc, red, n, eps, placement, center, buf, block)
+        else:
+            rc, vc, cc = _take(stats.rstd, s, lo, hi), _take(stats.var, s, lo, hi), None
+            dev = _given_dev(xc, _take(stats.mean, s, lo, hi), buf)
+        xhat = None
+        sg = None  # sum(g) over red, when it comes from the shared sum(dy)
+        if common:
+            sdy = _reduce(dyc, None, common, block)
+            dw = _reduce(dyc, dev, common, block, tmp=dxc)  # dx's chunk is free until g is formed
+            if cc is not None:
+                dw -= cc * sdy
+            dw *= rc
+            if param_rest:
+                dw = np.sum(dw, axis=param_rest, keepdims=True)
+            db = np.sum(sdy, axis=param_rest, keepdims=True) if param_rest else sdy
+            if center and training:
+                t = sdy if wc is None else sdy * wc
+                sg = np.sum(t, axis=red_rest, keepdims=True) if red_rest else t
+        else:
+            if dev is buf:
+                if cc is not None:
+                    buf -= cc
+                buf *= rc
+            else:
+                np.multiply(xc, rc, out=buf)
+            xhat = buf
+            dw = _reduce(dyc, xhat, param_red, block, tmp=dxc)
+            db = np.sum(dyc, axis=param_red, keepdims=True)
+        if not cross:
+            dweight[ix], dbias[ix] = dw, db
+        if not training:
+            # dx = g * r
+            if wc is None:
+                np.multiply(dyc, rc, out=dxc)
+            else:
+                np.multiply(dyc, wc, out=dxc)
+                dxc *= rc
+            return dw, db
+        gc = dxc
+        if center:
+            # gc = g - mean(g) with one correction pass, as _centered_mean.
+            if wc is None:
+                if sg is None:
+                    sg = _reduce(dyc, None, red, block)
+                np.subtract(dyc, sg / n, out=gc)
+            else:
+                np.multiply(dyc, wc, out=gc)
+                if sg is None:
+                    sg = _reduce(gc, None, red, block)
+                gc -= sg / n
+            gc -= _reduce(gc, None, red, block) / n
+        elif wc is None:
+            gc = dyc  # read only
+        else:
+            np.multiply(dyc, wc, out=gc)
+        beta = rc if placement == "inside" else _beta_outside(vc)
+        if xhat is not None:
+            k = _reduce(gc, xhat, red, block) / n
+            xhat *= beta * k  # (beta * k) * xhat
+            if gc is dxc:
+                dxc *= rc  # r * gc
+            else:
+                np.multiply(gc, rc, out=dxc)
+            dxc -= xhat
+            return dw, db
+        k = _reduce(gc, dev, red, block)
+        k *= rc / n
+        # dx = r (gc - beta k (dev - c))
+        if dev is buf:
+            if cc is not None:
+                buf -= cc
+            buf *= beta * k
+        else:
+            np.multiply(dev, beta * k, out=buf)
+        if gc is dxc:
+            dxc -= buf
+        else:
+            np.subtract(gc, buf, out=dxc)
+        dxc *= rc
+        return dw, db
+
+    parts = run_chunks(work, bounds, x.size)
+    if cross:
+        dweight, dbias = parts[0][0].copy(), parts[0][1].copy()
+        for dw, db in parts[1:]:
+            dweight += dw
+            dbias += db
+    return dx, dweight, dbias

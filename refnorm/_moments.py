@@ -26,13 +26,15 @@ class Moments:
     """Per-group statistics with keepdims shapes.
 
     The mean is the unevaluated pair ``m0 + c`` (about twice float64
-    precision); ``dev = x - m0`` is kept because every later pass needs it;
-    ``m2`` is the corrected sum of squared deviations; ``n`` the group length.
+    precision); ``dev = x - m0`` is kept by :func:`moments` because every later
+    pass needs it, and is None from the fused chunked core (``_core.fused_*``),
+    which never holds it for the whole array; ``m2`` is the corrected sum of
+    squared deviations; ``n`` the group length.
     """
 
     m0: np.ndarray
     c: np.ndarray
-    dev: np.ndarray
+    dev: np.ndarray | None
     m2: np.ndarray
     n: int
 
@@ -47,6 +49,9 @@ class Moments:
 
     def centered(self) -> np.ndarray:
         """x - mean evaluated as (x - m0) - c, keeping the low part of the mean."""
+        if self.dev is None:
+            raise ValueError("these moments were computed chunk by chunk and keep no deviations; "
+                             "use moments(x, axes) for x - m0")
         return self.dev - self.c
 
 
@@ -64,7 +69,7 @@ def moments(x: np.ndarray, axes: tuple[int, ...]) -> Moments:
     m0 /= n
     dev = x - m0
     s1 = np.sum(dev, axis=axes, keepdims=True)
-    c = s1 / n
+    c = np.where(np.isfinite(m0), s1 / n, 0.0)  # mean = m0 when m0 is +-Inf (IEEE 754), see _core._correction
     s2 = np.sum(np.square(dev), axis=axes, keepdims=True)
     # s1 * c is tiny next to s2 unless m0 was poor; it is never clamped.
     m2 = s2 - s1 * c

@@ -81,8 +81,9 @@ def batch_norm_forward(
     RefnormError for a bad argument (shape, dtype, range) or, with
     running_var_estimator="unbiased", a channel of one element.
 
-    NaN and Inf in x propagate by IEEE arithmetic: a NaN or Inf in a channel
-    makes that channel's statistics, and so its whole output, NaN.
+    NaN and Inf in x propagate by IEEE arithmetic: a NaN in a channel makes
+    its mean NaN; Infs of one sign make it that Inf (sum(x)/n); either way the
+    channel's variance and whole output are NaN (Inf - Inf).
     """
     xf = as_float64("x", x)
     check_rank("x", xf, 2)
@@ -110,7 +111,7 @@ def batch_norm_forward(
             raise RefnormError("running_mean and running_var are None, expected arrays of shape "
                                f"({c},) in eval mode (training=False)")
         st = _core.fixed_stats(rm.reshape(bshape), rv.reshape(bshape), eps, eps_placement)
-        y = _core.affine(_core.normalized(xv, st), wv, bv)
+        y, _ = _core.fused_forward(xv, _RED, wv, bv, eps=eps, placement=eps_placement, center=True, stats=st)
         return NormForward(y=y.reshape(xf.shape), mean=rm.copy(), var=rv.copy(),
                            rstd=st.rstd.reshape(c), running_mean=rm.copy(), running_var=rv.copy())
 
@@ -119,8 +120,7 @@ def batch_norm_forward(
     if rm is not None:
         mom, seen = check_momentum(momentum, batches_seen)
         check_reduction_length(n, running_var_estimator, "batch_norm_forward")
-    st = _core.batch_stats(xv, _RED, eps, eps_placement, center=True)
-    y = _core.affine(_core.normalized(xv, st), wv, bv)
+    y, st = _core.fused_forward(xv, _RED, wv, bv, eps=eps, placement=eps_placement, center=True)
     if rm is not None:
         ddof = 1 if running_var_estimator == "unbiased" else 0
         new_rm = _update(rm, st.mean.reshape(c), mom, momentum_convention, seen)
@@ -171,9 +171,8 @@ def batch_norm_backward(
     dyv = channel_view(dyf, ax)
     wv = None if w is None else w.reshape(bshape)
     st = _stats_for_backward(xv, training, mean, rstd, running_mean, running_var, c, eps, eps_placement, what)
-    xhat = _core.normalized(xv, st)
-    dx, dw, db = _core.backward(dyv, xhat, st, _RED, wv, _RED, eps=eps, placement=eps_placement,
-                                center=True, training=training)
+    dx, dw, db = _core.fused_backward(dyv, xv, _RED, wv, _RED, eps=eps, placement=eps_placement,
+                                      center=True, training=training, stats=st)
     return NormBackward(dx=dx.reshape(xf.shape), dweight=dw.reshape(c), dbias=db.reshape(c))
 
 
@@ -189,6 +188,8 @@ def _stats_for_backward(xv, training, mean, rstd, running_mean, running_var, c, 
     sr = param("rstd", rstd, (c,), what)
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
+    if sr is None:
+        return None  # batch statistics of x, recomputed inside the fused backward
     return _core.stats_for_backward(
         xv, _RED, None if sm is None else sm.reshape(bshape), None if sr is None else sr.reshape(bshape),
         eps=eps, placement=placement, center=True)

@@ -95,10 +95,9 @@ def group_norm_forward(
     w = param("weight", weight, (plan.c,), what)
     b = param("bias", bias, (plan.c,), what)
     xv = plan.view(xf)
-    st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=True)
-    y = _core.affine(_core.normalized(xv, st),
-                     None if w is None else w.reshape(plan.param_view),
-                     None if b is None else b.reshape(plan.param_view))
+    y, st = _core.fused_forward(xv, plan.red, None if w is None else w.reshape(plan.param_view),
+                                None if b is None else b.reshape(plan.param_view),
+                                eps=eps, placement=eps_placement, center=True)
     ss = (plan.shape[0], plan.groups)
     return NormForward(y=plan.unview(y), mean=st.mean.reshape(ss), var=st.var.reshape(ss),
                        rstd=st.rstd.reshape(ss))
@@ -134,11 +133,10 @@ def group_norm_backward(
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
     xv = plan.view(xf)
-    st = _core.stats_for_backward(
-        xv, plan.red, None if sm is None else sm.reshape(plan.stat_view),
-        None if sr is None else sr.reshape(plan.stat_view), eps=eps, placement=eps_placement, center=True)
-    xhat = _core.normalized(xv, st)
-    dx, dw, db = _core.backward(plan.view(dyf), xhat, st, plan.red,
-                                None if w is None else w.reshape(plan.param_view), plan.param_red,
-                                eps=eps, placement=eps_placement, center=True, training=True)
+    st = None if sr is None else _core.stats_for_backward(
+        xv, plan.red, sm.reshape(plan.stat_view), sr.reshape(plan.stat_view),
+        eps=eps, placement=eps_placement, center=True)
+    dx, dw, db = _core.fused_backward(plan.view(dyf), xv, plan.red,
+                                      None if w is None else w.reshape(plan.param_view), plan.param_red,
+                                      eps=eps, placement=eps_placement, center=True, training=True, stats=st)
     return NormBackward(dx=plan.unview(dx), dweight=dw.reshape(plan.c), dbias=db.reshape(plan.c))

@@ -80,11 +80,12 @@ def instance_norm_forward(
         if rm is None:
             raise RefnormError(f"running_mean and running_var are None, expected arrays of shape ({c},) "
                                "in eval mode (training=False)")
-        st = _core.fixed_stats(rm.reshape(pv), rv.reshape(pv), eps, eps_placement)
+        fixed = _core.fixed_stats(rm.reshape(pv), rv.reshape(pv), eps, eps_placement)
     else:
-        st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=True)
-    y = _core.affine(_core.normalized(xv, st), None if w is None else w.reshape(pv),
-                     None if b is None else b.reshape(pv))
+        fixed = None
+    y, st = _core.fused_forward(xv, plan.red, None if w is None else w.reshape(pv),
+                                None if b is None else b.reshape(pv),
+                                eps=eps, placement=eps_placement, center=True, stats=fixed)
     mean = np.broadcast_to(st.mean, np.broadcast_shapes(st.mean.shape, plan.stat_view)).reshape(ss)
     var = np.broadcast_to(st.var, np.broadcast_shapes(st.var.shape, plan.stat_view)).reshape(ss)
     rstd = np.broadcast_to(st.rstd, np.broadcast_shapes(st.rstd.shape, plan.stat_view)).reshape(ss)
@@ -140,11 +141,10 @@ def instance_norm_backward(
         sr = param("rstd", rstd, ss, "one value per sample and channel")
         if (sm is None) != (sr is None):
             raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
-        st = _core.stats_for_backward(
-            xv, plan.red, None if sm is None else sm.reshape(plan.stat_view),
-            None if sr is None else sr.reshape(plan.stat_view), eps=eps, placement=eps_placement, center=True)
-    xhat = _core.normalized(xv, st)
-    dx, dw, db = _core.backward(plan.view(dyf), xhat, st, plan.red, None if w is None else w.reshape(pv),
-                                plan.param_red, eps=eps, placement=eps_placement, center=True,
-                                training=training)
+        st = None if sr is None else _core.stats_for_backward(
+            xv, plan.red, sm.reshape(plan.stat_view), sr.reshape(plan.stat_view),
+            eps=eps, placement=eps_placement, center=True)
+    dx, dw, db = _core.fused_backward(plan.view(dyf), xv, plan.red, None if w is None else w.reshape(pv),
+                                      plan.param_red, eps=eps, placement=eps_placement, center=True,
+                                      training=training, stats=st)
     return NormBackward(dx=plan.unview(dx), dweight=dw.reshape(c), dbias=db.reshape(c))

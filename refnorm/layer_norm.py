@@ -32,7 +32,8 @@ def layer_norm_forward(
     default 1e-3 (checked here: torch 2.13, Keras 3.15).
 
     Returns NormForward with mean, var, rstd of the shape of the remaining axes.
-    NaN/Inf in a row make that row's statistics and output NaN (IEEE arithmetic).
+    NaN/Inf in a row make that row's variance and output NaN (IEEE arithmetic); its mean is
+    NaN for a NaN and the Inf itself for Infs of one sign (sum(x)/n).
     """
     xf = as_float64("x", x)
     check_nonempty("x", xf)
@@ -42,8 +43,7 @@ def layer_norm_forward(
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     b = check_param("bias", None if bias is None else as_float64("bias", bias), plan)
     xv = xf.reshape(plan.view)
-    st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=True)
-    y = _core.affine(_core.normalized(xv, st), w, b)
+    y, st = _core.fused_forward(xv, plan.red, w, b, eps=eps, placement=eps_placement, center=True)
     ss = plan.stat_shape
     return NormForward(y=y.reshape(xf.shape), mean=st.mean.reshape(ss), var=st.var.reshape(ss),
                        rstd=st.rstd.reshape(ss))
@@ -81,9 +81,9 @@ def layer_norm_backward(
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
     xv = xf.reshape(plan.view)
-    st = _core.stats_for_backward(xv, plan.red, sm, sr, eps=eps, placement=eps_placement, center=True)
-    xhat = _core.normalized(xv, st)
-    dx, dw, db = _core.backward(dyf.reshape(plan.view), xhat, st, plan.red, w, plan.param_red,
-                                eps=eps, placement=eps_placement, center=True, training=True)
+    st = None if sr is None else _core.stats_for_backward(xv, plan.red, sm, sr, eps=eps, placement=eps_placement,
+                                                          center=True)
+    dx, dw, db = _core.fused_backward(dyf.reshape(plan.view), xv, plan.red, w, plan.param_red,
+                                      eps=eps, placement=eps_placement, center=True, training=True, stats=st)
     return NormBackward(dx=dx.reshape(xf.shape), dweight=dw.reshape(plan.param_shape),
                         dbias=db.reshape(plan.param_shape))

@@ -39,8 +39,7 @@ def rms_norm_forward(
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     b = check_param("bias", None if bias is None else as_float64("bias", bias), plan)
     xv = xf.reshape(plan.view)
-    st = _core.batch_stats(xv, plan.red, eps, eps_placement, center=False)
-    y = _core.affine(_core.normalized(xv, st), w, b)
+    y, st = _core.fused_forward(xv, plan.red, w, b, eps=eps, placement=eps_placement, center=False)
     ss = plan.stat_shape
     return NormForward(y=y.reshape(xf.shape), mean=None, var=st.var.reshape(ss), rstd=st.rstd.reshape(ss))
 
@@ -71,9 +70,9 @@ def rms_norm_backward(
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     sr = check_stat("rstd", None if rstd is None else as_float64("rstd", rstd), plan)
     xv = xf.reshape(plan.view)
-    st = _core.stats_for_backward(xv, plan.red, None, sr, eps=eps, placement=eps_placement, center=False)
-    xhat = _core.normalized(xv, st)
-    dx, dw, db = _core.backward(dyf.reshape(plan.view), xhat, st, plan.red, w, plan.param_red,
-                                eps=eps, placement=eps_placement, center=False, training=True)
+    st = None if sr is None else _core.stats_for_backward(xv, plan.red, None, sr, eps=eps, placement=eps_placement,
+                                                          center=False)
+    dx, dw, db = _core.fused_backward(dyf.reshape(plan.view), xv, plan.red, w, plan.param_red,
+                                      eps=eps, placement=eps_placement, center=False, training=True, stats=st)
     return NormBackward(dx=dx.reshape(xf.shape), dweight=dw.reshape(plan.param_shape),
                         dbias=db.reshape(plan.param_shape))

@@ -256,10 +256,7 @@ def test_oracle_matches_exact_feature_ops(case, op, placement):
     _check_exact(fw.rstd, ref.rstd, n, sc["rstd"], f"exact {op} rstd")
 
 
-@pytest.mark.xfail(strict=True, reason="oracle bug: eps_placement='outside' backward gives NaN for a zero-variance "
-                   "group (refnorm/_core.py, backward and fused_backward: beta = 1/sqrt(var) = inf, times "
-                   "k = 0); expected dx = r (g - mean g)")
-@pytest.mark.filterwarnings("ignore::RuntimeWarning")  # the bug shows as inf * 0 in NumPy
+@pytest.mark.filterwarnings("ignore::RuntimeWarning")
 @pytest.mark.parametrize("x", [np.array([[0.5], [0.5], [0.5]]), np.array([[2.0, -1.0]])])
 def test_eps_outside_zero_variance_gradient(x):
     """A group whose variance is 0 (constant, or one element): with r = 1/(sqrt(v) + eps), y(x + t d)

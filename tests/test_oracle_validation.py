@@ -200,8 +200,9 @@ def test_nan_inf_confined_to_batch_norm_channel(bad):
 @pytest.mark.filterwarnings("ignore::RuntimeWarning")
 @pytest.mark.parametrize("bad", [np.nan, np.inf])
 def test_nan_inf_confined_to_layer_and_group_norm_rows(bad):
-    """Documented (refnorm.layer_norm_forward): NaN/Inf in a row make that row's statistics and
-    output NaN; the same holds per (sample, group) for group norm. Other rows are unchanged."""
+    """Documented (refnorm.layer_norm_forward): NaN/Inf in a row make that row's variance and
+    output NaN; its mean is NaN for a NaN and +Inf for a +Inf (sum(x)/n, IEEE 754-2019 §6.1).
+    The same holds per (sample, group) for group norm. Other rows are unchanged."""
     x = X.copy()
     x[1, 2, 0] = bad
     ln, ln0 = refnorm.layer_norm_forward(x, 5), refnorm.layer_norm_forward(X, 5)
@@ -210,7 +211,8 @@ def test_nan_inf_confined_to_layer_and_group_norm_rows(bad):
     mask[1, 2] = False
     np.testing.assert_array_equal(ln.y[mask], ln0.y[mask])
     gn, gn0 = refnorm.group_norm_forward(x, 3), refnorm.group_norm_forward(X, 3)
-    assert np.all(np.isnan(gn.y[1, 2])) and np.isnan(gn.mean[1, 2])
+    assert np.all(np.isnan(gn.y[1, 2])) and np.isnan(gn.var[1, 2])
+    assert (np.isnan(gn.mean[1, 2]) if np.isnan(bad) else gn.mean[1, 2] == bad)
     np.testing.assert_array_equal(gn.y[mask], gn0.y[mask])
     # A NaN in dy reaches its group's dx through mean(g) and mean(g x_hat), and no other group.
     dy = DY.copy()
