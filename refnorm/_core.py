@@ -45,7 +45,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._moments import Moments, group_size, mean_square, moments
+from ._moments import Moments, group_size, mean_square, moments, sum_keep
 from ._parallel import chunk_bounds, run_chunks
 
 
@@ -123,8 +123,8 @@ def affine(xhat: np.ndarray, w: np.ndarray | None, b: np.ndarray | None) -> np.n
 def _centered_mean(a: np.ndarray, red: tuple[int, ...]) -> np.ndarray:
     """a - mean(a) over ``red`` with one correction pass (the same idea as the moments)."""
     n = group_size(a.shape, red)
-    d = a - np.sum(a, axis=red, keepdims=True) / n
-    d -= np.sum(d, axis=red, keepdims=True) / n
+    d = a - sum_keep(a, red) / n
+    d -= sum_keep(d, red) / n
     return d
 
 
@@ -142,14 +142,14 @@ def backward(
     training: bool,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(dx, dweight, dbias) in the view; dweight/dbias keep the parameter's broadcast shape."""
-    dweight = np.sum(dy * xhat, axis=param_red, keepdims=True)
-    dbias = np.sum(dy, axis=param_red, keepdims=True)
+    dweight = sum_keep(dy * xhat, param_red)
+    dbias = sum_keep(dy, param_red)
     g = dy if w is None else dy * w
     if not training:
         return g * st.rstd, dweight, dbias
     n = group_size(g.shape, red)
     gc = _centered_mean(g, red) if center else g
-    k = np.sum(gc * xhat, axis=red, keepdims=True) / n
+    k = sum_keep(gc * xhat, red) / n
     if placement == "inside":
         beta = st.rstd
     else:
@@ -272,7 +272,7 @@ def _reduce(a: np.ndarray, b: np.ndarray | None, axes: tuple[int, ...], block: i
     """
     last = a.ndim - 1
     if block is None or last not in axes:
-        return np.sum(a if b is None else np.multiply(a, b, out=tmp), axis=axes, keepdims=True)
+        return sum_keep(a if b is None else np.multiply(a, b, out=tmp), axes)
     rest = tuple(ax for ax in axes if ax != last)
     split = a.shape[:last] + (a.shape[last] // block, block)
     p = np.vecdot(a.reshape(split), np.ones(block) if b is None else b.reshape(split))
@@ -488,11 +488,11 @@ def fused_backward(
                 dw -= cc * sdy
             dw *= rc
             if param_rest:
-                dw = np.sum(dw, axis=param_rest, keepdims=True)
-            db = np.sum(sdy, axis=param_rest, keepdims=True) if param_rest else sdy
+                dw = sum_keep(dw, param_rest)
+            db = sum_keep(sdy, param_rest) if param_rest else sdy
             if center and training:
                 t = sdy if wc is None else sdy * wc
-                sg = np.sum(t, axis=red_rest, keepdims=True) if red_rest else t
+                sg = sum_keep(t, red_rest) if red_rest else t
         else:
             if dev is buf:
                 if cc is not None:
@@ -502,7 +502,7 @@ def fused_backward(
                 np.multiply(xc, rc, out=buf)
             xhat = buf
             dw = _reduce(dyc, xhat, param_red, block, tmp=dxc)
-            db = np.sum(dyc, axis=param_red, keepdims=True)
+            db = sum_keep(dyc, param_red)
         if not cross:
             dweight[ix], dbias[ix] = dw, db
         if not training:

@@ -55,6 +55,43 @@ class Moments:
         return self.dev - self.c
 
 
+#: Slices summed one after another before their sums are combined, for reductions down a
+#: strided axis (see :func:`sum_keep`).
+OUTER_BLOCK = 128
+
+
+def sum_keep(t: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
+    """sum(t) over ``axes``, keepdims, with a short accumulation along every reduced axis.
+
+    NumPy sums pairwise only along the innermost axis; down any other axis it adds one slice
+    at a time, whose error grows like n u (Higham 2002, Accuracy and Stability of Numerical
+    Algorithms, §4.2). Such axes are summed in blocks of OUTER_BLOCK slices, and the block
+    sums again in blocks, so no accumulation is longer than OUTER_BLOCK terms:
+    error <= (OUTER_BLOCK ceil(log_OUTER_BLOCK n) + log2 n) u instead of n u.
+    The order of the additions depends only on the shape, never on the data.
+    """
+    last = t.ndim - 1
+    if last in axes:
+        t = np.sum(t, axis=last, keepdims=True)
+    for a in sorted((a for a in axes if a != last), reverse=True):
+        t = _sum_blocked(t, a)
+    return t
+
+
+def _sum_blocked(t: np.ndarray, a: int) -> np.ndarray:
+    n = t.shape[a]
+    if n <= OUTER_BLOCK:
+        return np.sum(t, axis=a, keepdims=True)
+    m = n - n % OUTER_BLOCK
+    pre = (slice(None),) * a
+    head = t[pre + (slice(0, m),)]
+    blocks = np.sum(head.reshape(t.shape[:a] + (m // OUTER_BLOCK, OUTER_BLOCK) + t.shape[a + 1:]), axis=a + 1)
+    s = _sum_blocked(blocks, a)
+    if m < n:
+        s = s + np.sum(t[pre + (slice(m, n),)], axis=a, keepdims=True)
+    return s
+
+
 def group_size(shape: tuple[int, ...], axes: tuple[int, ...]) -> int:
     n = 1
     for a in axes:
@@ -65,12 +102,12 @@ def group_size(shape: tuple[int, ...], axes: tuple[int, ...]) -> int:
 def moments(x: np.ndarray, axes: tuple[int, ...]) -> Moments:
     """Corrected two-pass moments of float64 ``x`` over canonical ``axes`` (keepdims)."""
     n = group_size(x.shape, axes)
-    m0 = np.sum(x, axis=axes, keepdims=True)
+    m0 = sum_keep(x, axes)
     m0 /= n
     dev = x - m0
-    s1 = np.sum(dev, axis=axes, keepdims=True)
+    s1 = sum_keep(dev, axes)
     c = np.where(np.isfinite(m0), s1 / n, 0.0)  # mean = m0 when m0 is +-Inf (IEEE 754), see _core._correction
-    s2 = np.sum(np.square(dev), axis=axes, keepdims=True)
+    s2 = sum_keep(np.square(dev), axes)
     # s1 * c is tiny next to s2 unless m0 was poor; it is never clamped.
     m2 = s2 - s1 * c
     return Moments(m0=m0, c=c, dev=dev, m2=m2, n=n)
@@ -79,6 +116,6 @@ def moments(x: np.ndarray, axes: tuple[int, ...]) -> Moments:
 def mean_square(x: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
     """mean(x^2) over ``axes`` (keepdims); a sum of non-negative terms needs no correction."""
     n = group_size(x.shape, axes)
-    s = np.sum(np.square(x), axis=axes, keepdims=True)
+    s = sum_keep(np.square(x), axes)
     s /= n
     return s

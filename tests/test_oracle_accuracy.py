@@ -357,15 +357,13 @@ def test_cancellation_smaller_lengths(n, groups):
     _compare_group_rows(fi, bi, ref, lambda a: a.reshape(groups, n), f"n={n} instance_norm")
 
 
-_STRIDED_SUM = ("oracle bug: batch norm over a strided (non-innermost) axis, e.g. contiguous channels-last "
-                "(N*S, C) input, sums with NumPy's row-by-row accumulation instead of pairwise summation; "
-                "at n = 1e5 with mean 1e8, spread 1e-2 the variance errs by 1.05e-12 and y by 4.7e-13 "
-                "relative (1e6: 2.1e-12 and 9.7e-13), above the 1e-12 target")
+# Before refnorm._moments.sum_keep, this case failed: NumPy adds slices of a strided axis one at a
+# time (numpy.sum Notes: pairwise summation only along the fast axis), and at n = 1e5 the
+# variance erred by 1.05e-12 relative; blocked summation brings it to the float64 level.
 
 
 @pytest.mark.parametrize("n,groups", [SMALLER[0], SMALLER[1],
-                                      pytest.param(*SMALLER[2], marks=pytest.mark.xfail(strict=True,
-                                                                                        reason=_STRIDED_SUM))])
+                                      SMALLER[2]])
 def test_cancellation_batch_norm_channels_last(n, groups):
     """Channels-last batch norm on a contiguous (n, C) array, the layout a channels-last framework
     stores: every channel's reduction runs down a strided axis."""
