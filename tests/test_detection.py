@@ -113,9 +113,9 @@ FAULTS = {
          f"{_GN}/8x32x14x14/groups=8/normal/w=random/b=random/eps=1e-05/train/contiguous"),
         lambda c: c["weight"] == "none", "crashed"),
     "single_row_hang": (
-        (f"{_RMS}/1x257/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous",
-         f"{_RMS}/7x13/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous",
-         f"{_RMS}/6x1/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous"),
+        (f"{_RMS}/1x257/norm_ndim=1/normal/w=random/b=none/eps=1e-05/train/contiguous",
+         f"{_RMS}/7x13/norm_ndim=1/normal/w=random/b=none/eps=1e-05/train/contiguous",
+         f"{_RMS}/6x1/norm_ndim=1/normal/w=random/b=none/eps=1e-05/train/contiguous"),
         lambda c: math.prod(c["shape"][:-1]) == 1, "timed_out"),
 }
 

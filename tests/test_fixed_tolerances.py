@@ -85,8 +85,9 @@ def test_fixed_tolerances_on_a_correct_library_kernel():
     """One test for the torch runs, so that one process makes them (7 runs of the tier)."""
     docs = _torch_runs()
     derived = _status(docs["derived"])
-    # The kernel is correct by the derived bounds on every standard case of every dtype ...
-    assert derived and all(s == "passed" for s in derived.values()), derived
+    # The kernel is correct by the derived bounds on every standard case of every dtype but the
+    # NaN/Inf case, where torch saves a NaN mean for an Inf group (see test_no_false_alarms.KNOWN) ...
+    assert derived and all(s == "passed" for cid, s in derived.items() if "/nonfinite/" not in cid), derived
     lines = []
     for dt in DTYPES:
         n, k, ids = _alarms(docs["derived"], docs["torch", dt])
