@@ -64,7 +64,7 @@ def _check(spec: str, out: Path, workers: int, tier: str, report: bool, peers_en
     print(f"\n=== {kernel.name}  ({kernel.notes})")
     doc = run_check(kernel, RunOptions(tier=tier, workers=workers, command=f"refnorm check {spec} --tier {tier}"),
                     spec=spec)
-    stem = kernel.name.replace(" ", "_")
+    stem = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in kernel.name).strip("_")
     path = write_json_atomic(out / f"{stem}.json", doc)
     print(summary_table(doc))
     print(f"verdict: {doc['verdict'].upper()}   results: {_rel(path)}")

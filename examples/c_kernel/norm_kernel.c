@@ -83,7 +83,8 @@ static stats_t group_stats(const float *base, const int64_t *off, int64_t n, dou
         s1 += d;
         s2 += d * d;
     }
-    s.c = s1 / (double)n;
+    /* With an infinite m0 the deviations are Inf - Inf = NaN: the mean is m0 itself (IEEE 754). */
+    s.c = isfinite(s.m0) ? s1 / (double)n : 0.0;
     double m2 = s2 - s1 * s.c;
     if (m2 < 0.0) m2 = 0.0; /* rounding only: M2 >= 0 in exact arithmetic; NaN stays NaN */
     s.var = m2 / (double)n;
