@@ -68,8 +68,10 @@ def _ordinal(a: np.ndarray) -> np.ndarray:
     for i < 0 the order reverses, and MIN - i puts them just below zero.
     """
     size = a.dtype.itemsize
-    i = a.view(_INT[size]).astype(np.int64)
-    return np.where(i < 0, np.int64(-(1 << (8 * size - 1))) - i, i)
+    t = _INT[size]
+    i = a.view(t)
+    # In the format's own integer width: MIN - i cannot overflow for i in [MIN, -1].
+    return np.where(i < 0, t(np.iinfo(t).min) - i, i)
 
 
 def ulp_distance(a: np.ndarray, b: np.ndarray, name: str) -> np.ndarray:
@@ -84,6 +86,6 @@ def ulp_distance(a: np.ndarray, b: np.ndarray, name: str) -> np.ndarray:
     rb = np.asarray(b).astype(dt)
     ia = _ordinal(np.ascontiguousarray(ra))
     ib = _ordinal(np.ascontiguousarray(rb))
-    d = np.abs(ia - ib)
-    nan = np.isnan(ra.astype(np.float64)) | np.isnan(rb.astype(np.float64))
+    d = np.abs(np.subtract(ia, ib, dtype=np.int64))
+    nan = np.isnan(ra) | np.isnan(rb)
     return np.where(nan, -1, d)

@@ -74,8 +74,16 @@ def _call(kernel: Kernel, entry: str, kwargs: dict[str, Any]) -> Any:
         raise KernelCallError(f"{entry} raised {type(e).__name__}: {e}\n{tb}") from e
 
 
-def _snapshot(inp: dict[str, Any]) -> dict[str, bytes]:
-    return {k: np.ascontiguousarray(v).tobytes() for k, v in inp.items() if isinstance(v, np.ndarray)}
+def _snapshot(inp: dict[str, Any]) -> dict[str, np.ndarray]:
+    return {k: np.array(v, order="C") for k, v in inp.items() if isinstance(v, np.ndarray)}
+
+
+def _changed(before: np.ndarray, after: np.ndarray) -> bool:
+    """Whether the bits differ (NaN payloads and signed zeros included): compare as integers."""
+    if before.shape != after.shape or before.dtype != after.dtype:
+        return True
+    view = {1: np.uint8, 2: np.uint16, 4: np.uint32, 8: np.uint64}[before.dtype.itemsize]
+    return not np.array_equal(np.ascontiguousarray(before).view(view), np.ascontiguousarray(after).view(view))
 
 
 def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd) -> tuple[dict[str, Any], list[str]]:
@@ -103,8 +111,7 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd)
         if inplace and kernel.updates_running:
             got["running_mean"] = run_inp["running_mean"]
             got["running_var"] = run_inp["running_var"]
-        after = _snapshot({k: run_inp[k] for k in before})
-        modified += [k for k in before if before[k] != after[k]]
+        modified += [k for k in before if _changed(before[k], run_inp[k])]
         out.update(got)
         saved = {s: got[s] for s in conv.saved if s in got} if train else {}
     bwd = "backward" if train else "backward_eval"
@@ -117,8 +124,7 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd)
         before = _snapshot(inp)
         res = _call(kernel, bwd, ops.kernel_kwargs(case, bwd, inp, saved=saved))
         out.update(_named(res, kernel.grads, bwd))
-        after = _snapshot(inp)
-        modified += [k for k in before if before[k] != after[k] and k not in modified]
+        modified += [k for k in before if k not in modified and _changed(before[k], inp[k])]
     return out, modified
 
 
