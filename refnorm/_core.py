@@ -275,11 +275,19 @@ def _reduce(a: np.ndarray, b: np.ndarray | None, axes: tuple[int, ...], block: i
         return sum_keep(a if b is None else np.multiply(a, b, out=tmp), axes)
     rest = tuple(ax for ax in axes if ax != last)
     split = a.shape[:last] + (a.shape[last] // block, block)
-    p = np.vecdot(a.reshape(split), np.ones(block) if b is None else b.reshape(split))
-    p = np.sum(p, axis=-1)
+    p = np.vecdot(a.reshape(split), _ones(block) if b is None else b.reshape(split))
+    p = np.add.reduce(p, axis=-1)
     if rest:
         p = _sum_last(p, rest)
     return p[..., np.newaxis]
+
+
+@functools.lru_cache(maxsize=64)
+def _ones(length: int) -> np.ndarray:
+    """A read-only vector of ones (the second operand of a dot that is a plain sum)."""
+    v = np.ones(length)
+    v.flags.writeable = False
+    return v
 
 
 def _sum_last(p: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
@@ -291,7 +299,7 @@ def _sum_last(p: np.ndarray, axes: tuple[int, ...]) -> np.ndarray:
     """
     keep = [i for i in range(p.ndim) if i not in axes]
     q = np.ascontiguousarray(np.transpose(p, keep + list(axes)))
-    q = np.sum(q.reshape(q.shape[:len(keep)] + (-1,)), axis=-1)
+    q = np.add.reduce(q.reshape(q.shape[:len(keep)] + (-1,)), axis=-1)
     return q.reshape(tuple(1 if i in axes else d for i, d in enumerate(p.shape)))
 
 
@@ -451,7 +459,10 @@ def fused_backward(
         dx           = r (gc - beta k (dev - c))
 
     the formulas of :func:`backward` rearranged, with fewer passes over the
-    data. Otherwise (layer and RMS norm, whose dweight sums across rows)
+    data; with the batch statistics (the default) r is also scaled into g and
+    the correction of mean(g) folded into the final constants instead of a
+    pass of its own (see the comment there). Otherwise (layer and RMS norm,
+    whose dweight sums across rows)
     xhat is formed as in :func:`normalized`. Partial dweight/dbias sums that
     cross chunks are added in chunk order. Memory: dx, plus one scratch
     buffer per chunk.
@@ -512,6 +523,22 @@ def fused_backward(
             else:
                 np.multiply(dyc, wc, out=dxc)
                 dxc *= rc
+            return dw, db
+        if xhat is None and stats is None and center:
+            # Batch statistics, centering, weight constant along ``common`` (batch, group and
+            # instance norm): r scaled into g and the correction of mean(g) folded into the
+            # constants rather than applied in a pass of its own. With gr = r g - r mean(g),
+            # corr = mean(gr) (its rounding error), gc r = gr - corr, xhat = (dev - c) r:
+            #   k  = mean(gc xhat) = (sum(gr dev) - corr sum(dev)) / n     (sum(gc) = 0)
+            #   dx = r gc - beta k xhat = gr - beta k r dev - (corr - beta k r c)
+            np.multiply(dyc, rc if wc is None else rc * wc, out=dxc)
+            dxc -= rc * (sg / n)
+            corr = _reduce(dxc, None, red, block) / n
+            k = (_reduce(dxc, dev, red, block) - corr * (cc * n)) / n
+            coef = (rc if placement == "inside" else _beta_outside(vc)) * k * rc
+            buf *= coef
+            dxc -= buf
+            dxc -= corr - coef * cc
             return dw, db
         gc = dxc
         if center:
