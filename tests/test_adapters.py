@@ -32,6 +32,8 @@ import sys
 import warnings
 
 import numpy as np
+
+from conformance.cases.generators import laid_out
 import pytest
 
 import refnorm
@@ -179,15 +181,8 @@ def check(name: str, got, exact: np.ndarray, scale: np.ndarray, *, out_fmt: str,
 # =========================================================================== inputs and calls
 
 def _strided(a: np.ndarray, kind: str) -> np.ndarray:
-    """The same values in another memory layout (a view of a larger or permuted buffer)."""
-    if kind == "contiguous":
-        return np.ascontiguousarray(a)
-    if kind == "transposed":
-        perm = tuple(reversed(range(a.ndim)))
-        return np.ascontiguousarray(a.transpose(perm)).transpose(perm)
-    if kind == "reversed":
-        return a[..., ::-1].copy()[..., ::-1]
-    raise ValueError(kind)
+    """The same values in another memory layout: the catalog's own stride kinds."""
+    return laid_out(a, kind)
 
 
 def make_inputs(case: Case, prec: Precision, seed: int, strides: str = "contiguous", weight: bool = True,

@@ -11,7 +11,7 @@ from .. import dtypes
 from ..kernel import Precision
 from .model import Case
 
-__all__ = ["make_inputs", "group_index", "CANCELLATION"]
+__all__ = ["make_inputs", "group_index", "laid_out", "CANCELLATION"]
 
 #: (mean, spread) of "cancellation" values per storage format: the mean is many
 #: spreads away (condition number kappa = sqrt(1 + mean^2/var) of the variance,
@@ -93,7 +93,7 @@ def _param(kind: str, shape: tuple[int, ...], rng: np.random.Generator, role: st
     raise ValueError(f"unknown parameter kind {kind!r}")
 
 
-def _layout(a: np.ndarray, strides: str) -> np.ndarray:
+def laid_out(a: np.ndarray, strides: str) -> np.ndarray:
     """The same logical array, laid out in memory as the case asks."""
     if strides == "contiguous":
         return np.ascontiguousarray(a)
@@ -147,8 +147,8 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
     b64 = _param(case.bias, ps, rng, "bias")
     st = dtypes.dtype_of(p.storage)
     pt = dtypes.dtype_of(p.params)
-    x = _layout(x64.astype(st), case.strides)
-    dy = _layout(dy64.astype(st), case.strides)
+    x = laid_out(x64.astype(st), case.strides)
+    dy = laid_out(dy64.astype(st), case.strides)
     out: dict[str, Any] = {
         "x": x,
         "dy": dy,
