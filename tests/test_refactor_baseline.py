@@ -1,0 +1,95 @@
+"""The harness does bit for bit what it did before the op descriptions moved into conformance/ops/.
+
+The stored record under tests/data/refactor_baseline/ was produced by commit add45d7 (the main
+branch before that refactor, issue 12) with tests/data/make_refactor_baseline.py; what it holds is
+described in tests/refactor_capture.py: per standard-tier case of every op and dtype, the Case,
+digests of the generated inputs and of what each kernel entry point received, digests of the
+oracle's outputs and of the elementwise bounds, and every metric, bound summary and verdict of
+the results document, for a fixed NumPy kernel and seed; and the case ids of every tier.
+
+A fresh record must equal the stored one. A field that appears only in the fresh record (a
+metric added to the results document later) is not a change of what existed and is allowed;
+every stored field must be present with the same value. The reference is the project's own
+earlier output: this test guards against unintended change (common practice for refactors:
+a characterisation test), it does not check correctness, which the other tests do against
+outside sources. A change that is meant to alter cases, inputs, bounds or verdicts regenerates
+the record and says so in its commit.
+"""
+
+from __future__ import annotations
+
+import functools
+from typing import Any
+
+import pytest
+
+import refactor_capture as rc
+
+
+@functools.lru_cache(maxsize=None)
+def _stored(op: str) -> dict[str, Any]:
+    return rc.read(rc.path_for(op))
+
+
+def _differences(old: Any, new: Any, path: str, out: list[str], limit: int = 12) -> None:
+    if len(out) >= limit:
+        return
+    if isinstance(old, dict):
+        if not isinstance(new, dict):
+            out.append(f"{path}: was a dict, now {type(new).__name__}")
+            return
+        for k in old:
+            if k not in new:
+                out.append(f"{path}.{k}: missing (was {old[k]!r:.120})")
+            else:
+                _differences(old[k], new[k], f"{path}.{k}", out, limit)
+    elif isinstance(old, list):
+        if not isinstance(new, list) or len(new) != len(old):
+            out.append(f"{path}: was a list of {len(old)}, now {new!r:.200}")
+            return
+        for i, (a, b) in enumerate(zip(old, new)):
+            _differences(a, b, f"{path}[{i}]", out, limit)
+    elif type(old) is not type(new) or old != new:
+        out.append(f"{path}: was {old!r:.200}, now {new!r:.200}")
+
+
+@pytest.mark.parametrize("dtype", rc.DTYPES)
+@pytest.mark.parametrize("op", rc.OPS)
+def test_standard_tier_unchanged(op, dtype):
+    old = _stored(op)[dtype]
+    new = rc.capture(op, dtype)
+    assert [c["id"] for c in new["cases"]] == [c["id"] for c in old["cases"]], \
+        f"{op}/{dtype}: the standard tier's case ids or their order changed"
+    diffs: list[str] = []
+    _differences(old, new, f"{op}/{dtype}", diffs)
+    assert not diffs, "the harness's results changed:\n" + "\n".join(diffs)
+
+
+@functools.lru_cache(maxsize=None)
+def _catalogs() -> tuple[dict[str, Any], dict[str, Any]]:
+    return rc.read(rc.DATA / "catalogs.json.gz"), rc.catalogs()
+
+
+@pytest.mark.parametrize("op", rc.OPS)
+def test_every_tier_lists_the_same_cases(op):
+    old, new = _catalogs()
+    for tier in old:
+        for dt in rc.DTYPES:
+            o, n = old[tier][op][dt], new[tier][op][dt]
+            assert n["ids"] == o["ids"], f"{tier}/{op}/{dt}: case ids or their order changed"
+            assert n["cases_sha256"] == o["cases_sha256"], f"{tier}/{op}/{dt}: a Case dict changed"
+
+
+def test_the_record_can_fail():
+    """The comparison sees a changed metric, a missing field and a reordered list (it is not vacuous)."""
+    old = {"a": [1, 2.5], "b": {"c": "x", "d": 0.1}}
+    for new in ({"a": [1, 2.5000000000000004], "b": {"c": "x", "d": 0.1}},
+                {"a": [1, 2.5], "b": {"c": "x"}},
+                {"a": [2.5, 1], "b": {"c": "x", "d": 0.1}},
+                {"a": [1, 2.5], "b": {"c": "x", "d": 1}}):
+        diffs: list[str] = []
+        _differences(old, new, "r", diffs)
+        assert diffs, new
+    same: list[str] = []
+    _differences(old, {**old, "extra": 1}, "r", same)
+    assert not same
