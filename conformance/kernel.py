@@ -16,6 +16,8 @@ from pathlib import Path
 from typing import Any, Callable, Mapping
 
 from . import dtypes
+from . import ops as _ops
+from .ops import OPS, SAVED_FORMS
 
 __all__ = [
     "OPS",
@@ -29,15 +31,10 @@ __all__ = [
     "load_kernel",
 ]
 
-OPS = ("batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm")
 ENTRY_POINTS = ("forward", "forward_eval", "backward", "backward_eval")
 SUMMATION_MODELS = ("probabilistic", "pairwise", "worst")
-#: Forms of the saved dispersion statistic: rstd = 1/sqrt(var+eps), var (biased),
-#: var_unbiased (M2/(n-1), what TF's fused_batch_norm returns), std = sqrt(var+eps).
-SAVED_FORMS = ("rstd", "var", "var_unbiased", "std")
 LAYOUTS = ("channels_first", "channels_last")
 RUNNING_STYLES = ("return", "inplace")
-_RUNNING_OPS = ("batch_norm", "instance_norm")
 
 
 class KernelError(ValueError):
@@ -197,15 +194,16 @@ def _validate(k: Kernel) -> None:
     def bad(what: str) -> None:
         raise KernelError(f"kernel {k.name!r}: {what}")
 
-    if k.op not in OPS:
+    spec = _ops.find(k.op)
+    if spec is None:
         bad(f"op is {k.op!r}, expected one of {', '.join(OPS)}")
     if not k.entry_points:
         bad("no entry point: give at least one of forward, forward_eval, backward, backward_eval")
     for e in k.entry_points:
         if not callable(getattr(k, e)):
             bad(f"{e} is {type(getattr(k, e)).__name__}, expected a callable")
-    if k.op not in _RUNNING_OPS and (k.forward_eval or k.backward_eval):
-        bad(f"{k.op} has no eval mode; forward_eval/backward_eval are for batch_norm and instance_norm")
+    if not spec.has_eval and (k.forward_eval or k.backward_eval):
+        bad(f"{k.op} has no eval mode; forward_eval/backward_eval are for {' and '.join(_ops.with_eval())}")
     for d in k.dtypes:
         if d not in dtypes.FORMATS:
             bad(f"dtype {d!r} is not one of {', '.join(dtypes.FORMATS)}")
@@ -221,15 +219,15 @@ def _validate(k: Kernel) -> None:
         bad(f"conventions.eps_placement is {c.eps_placement!r}, expected 'inside' or 'outside'")
     if c.running not in RUNNING_STYLES:
         bad(f"conventions.running is {c.running!r}, expected 'return' or 'inplace'")
-    allowed_saved = ("mean",) + SAVED_FORMS
+    allowed_saved = _ops.STATISTICS
     for s in c.saved:
         if s not in allowed_saved:
             bad(f"conventions.saved has {s!r}, expected names from {', '.join(allowed_saved)}")
-    if k.op == "rms_norm" and "mean" in c.saved:
-        bad("rms_norm has no mean to save; remove 'mean' from conventions.saved")
+    if "mean" in c.saved and "mean" not in spec.saved:
+        bad(f"{k.op} has no mean to save; remove 'mean' from conventions.saved")
     expect_out = {"y"} | set(c.saved)
-    if k.op in _RUNNING_OPS and c.running == "return" and k.updates_running:
-        expect_out |= {"running_mean", "running_var"}
+    if c.running == "return" and k.updates_running:
+        expect_out |= set(spec.running_outputs)
     if k.outputs[:1] != ("y",):
         bad(f"outputs is {k.outputs}, expected 'y' first")
     unknown = set(k.outputs) - expect_out

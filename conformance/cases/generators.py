@@ -7,8 +7,9 @@ from typing import Any
 
 import numpy as np
 
-from .. import dtypes
+from .. import dtypes, ops
 from ..kernel import Precision
+from ..ops.axes import statistic_index
 from .model import Case
 
 __all__ = ["make_inputs", "group_index", "laid_out", "CANCELLATION"]
@@ -28,21 +29,7 @@ CANCELLATION = {
 
 def group_index(case: Case) -> np.ndarray:
     """For every element of x (logical shape), the index of its normalization statistic."""
-    shape = case.shape
-    idx = np.indices(shape, sparse=True)
-    if case.op in ("layer_norm", "rms_norm"):
-        lead = shape[: len(shape) - case.norm_ndim]
-        flat = np.ravel_multi_index(tuple(np.broadcast_arrays(*idx[: len(lead)])), lead) if lead else 0
-        return np.broadcast_to(flat, shape)
-    ca = case.channel_axis
-    c = np.broadcast_to(idx[ca], shape)
-    n = np.broadcast_to(idx[0], shape)
-    if case.op == "batch_norm":
-        return c
-    if case.op == "instance_norm":
-        return n * case.channels + c
-    cg = case.channels // case.groups
-    return n * case.groups + c // cg
+    return statistic_index(ops.get(case.op).axes.view(case), tuple(case.shape))
 
 
 def _values(case: Case, rng: np.random.Generator) -> np.ndarray:
@@ -114,10 +101,6 @@ def laid_out(a: np.ndarray, strides: str) -> np.ndarray:
     raise ValueError(f"unknown stride kind {strides!r}")
 
 
-def _param_shape(case: Case) -> tuple[int, ...]:
-    return case.normalized_shape if case.op in ("layer_norm", "rms_norm") else (case.channels,)
-
-
 def _running(case: Case, x: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
     """Running statistics near the data's own (so eval-mode outputs stay O(1)), per channel."""
     c = case.channels
@@ -142,7 +125,8 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
     rng = np.random.default_rng(case.seed_for(seed))
     x64 = _values(case, rng)
     dy64 = rng.standard_normal(case.shape)
-    ps = _param_shape(case)
+    spec = ops.get(case.op)
+    ps = spec.axes.param_shape(case)
     w64 = _param(case.weight, ps, rng, "weight")
     b64 = _param(case.bias, ps, rng, "bias")
     st = dtypes.dtype_of(p.storage)
@@ -157,7 +141,7 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
         "running_mean": None,
         "running_var": None,
     }
-    if case.op in ("batch_norm", "instance_norm") and (case.mode == "eval" or case.running):
+    if spec.has_eval and (case.mode == "eval" or case.running):
         rm, rv = _running(case, x.astype(np.float64), rng)
         out["running_mean"] = rm.astype(pt)
         out["running_var"] = rv.astype(pt)

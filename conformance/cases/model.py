@@ -6,6 +6,8 @@ import hashlib
 import math
 from dataclasses import asdict, dataclass, field
 
+from .. import ops
+
 __all__ = ["Case", "TIERS", "VALUE_KINDS", "STRIDE_KINDS"]
 
 TIERS = ("smoke", "standard", "exhaustive")
@@ -60,7 +62,7 @@ class Case:
     def id(self) -> str:
         """Readable stable id: op/dtype/layout/shape/values/w=/b=/eps=/mode[/momentum]/strides."""
         parts = [self.op, self.dtype, self.layout, "x".join(map(str, self.shape))]
-        if self.op == "group_norm":
+        if ops.get(self.op).axes.takes_groups:
             parts.append(f"groups={self.groups}")
         if self.norm_ndim:
             parts.append(f"norm_ndim={self.norm_ndim}")
@@ -90,20 +92,12 @@ class Case:
     @property
     def group_length(self) -> int:
         """Elements per normalization statistic (the reduction length n of the forward pass)."""
-        if self.op in ("layer_norm", "rms_norm"):
-            return math.prod(self.normalized_shape)
-        if self.op == "batch_norm":
-            return self.numel // self.channels
-        if self.op == "instance_norm":
-            return self.numel // (self.shape[0] * self.channels)
-        return self.numel // (self.shape[0] * self.groups)
+        return ops.get(self.op).axes.group_length(self)
 
     @property
     def param_length(self) -> int:
         """Terms in each dweight/dbias sum (the reduction length of the parameter gradients)."""
-        if self.op in ("layer_norm", "rms_norm"):
-            return self.numel // math.prod(self.normalized_shape)
-        return self.numel // self.channels
+        return ops.get(self.op).axes.param_length(self)
 
     def seed_for(self, base_seed: int) -> int:
         """A 63-bit seed from the run's seed and the id: the same case gives the same data."""

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .. import dtypes as _dtypes
+from .. import ops as _ops
 from ..cases.model import STRIDE_KINDS, VALUE_KINDS, Case
 from ..kernel import LAYOUTS
 from ..results import BAD, CAUTION, as_float
@@ -314,30 +315,26 @@ def coverage_gaps(doc: dict[str, Any]) -> Gaps:
             skipped.setdefault(c.get("message") or "no reason recorded", []).append(c["id"])
     ran = _run_cases(doc)
     declared = list(k.get("dtypes", []))
-    op = k.get("op", "")
-    channel_op = op in ("batch_norm", "group_norm", "instance_norm")
-    layouts = [lay for lay in LAYOUTS if lay not in k.get("layouts", LAYOUTS)] if channel_op else []
+    # None for an op this version does not know: its layouts, modes and lengths are not judged.
+    spec = _ops.find(k.get("op", ""))
+    op_layouts = spec.axes.layouts if spec else ()
+    layouts = [lay for lay in LAYOUTS if lay in op_layouts and lay not in k.get("layouts", LAYOUTS)]
     values = [v for v in VALUE_KINDS if v not in {c.values for c in ran}]
-    strides = [s for s in STRIDE_KINDS if s not in {c.strides for c in ran}
-               and (channel_op or s != "channels_last_memory")]
-    modes = []
-    if op in ("batch_norm", "instance_norm"):
-        seen = {(c.mode, c.running) for c in ran}
-        for mode, running, label in (("train", False, "training without running statistics"),
-                                     ("train", True, "training with running-statistic updates"),
-                                     ("eval", False, "eval mode (running statistics)")):
-            if (mode, running) not in seen:
-                modes.append(label)
+    op_strides = spec.axes.strides if spec else STRIDE_KINDS
+    strides = [s for s in STRIDE_KINDS if s not in {c.strides for c in ran} and s in op_strides]
+    seen = {(c.mode, c.running) for c in ran}
+    modes = [label for mode, running, label in (spec.modes if spec else ()) if (mode, running) not in seen]
+    has_running = bool(spec and spec.has_eval)
     limits = []
     if not k.get("strided", True):
         limits.append("strided=False: non-contiguous inputs are not checked")
     if not k.get("optional_params", True):
         limits.append("optional_params=False: cases without weight or bias are not checked")
-    if op in ("batch_norm", "instance_norm") and not k.get("momentum_none", True):
+    if has_running and not k.get("momentum_none", True):
         limits.append("momentum_none=False: the cumulative moving average (momentum=None) is not checked")
     if k.get("min_reduction", 1) > 1:
         limits.append(f"min_reduction={k['min_reduction']}: shorter training reductions are not checked")
-    if not k.get("updates_running", True) and op in ("batch_norm", "instance_norm"):
+    if not k.get("updates_running", True) and has_running:
         limits.append("updates_running=False: running statistics are not checked")
     entry = k.get("entry_points", [])
     unchecked = []
@@ -345,7 +342,7 @@ def coverage_gaps(doc: dict[str, Any]) -> Gaps:
         unchecked.append("gradients (no backward entry point)")
     else:
         unchecked += [g for g in ("dx", "dweight", "dbias") if g not in k.get("grads", [])]
-    longest = max((c.group_length for c in ran), default=None)
+    longest = max((c.group_length for c in ran), default=None) if spec else None
     return Gaps(skipped=skipped,
                 dtypes_undeclared=[d for d in _dtypes.FORMATS if d not in declared],
                 dtypes_not_run=[d for d in declared if d not in run.get("dtypes", declared)],

@@ -29,7 +29,7 @@ from typing import Callable
 
 import numpy as np
 
-from .. import dtypes
+from .. import dtypes, ops
 from ..cases.model import Case
 from ..kernel import Conventions, Precision
 from .bound import Bound
@@ -41,7 +41,6 @@ __all__ = ["derive_bounds", "output_dtype", "OUTPUTS", "STAT_OUTPUTS"]
 
 STAT_OUTPUTS = ("mean", "rstd", "var", "var_unbiased", "std")
 OUTPUTS = ("y",) + STAT_OUTPUTS + ("running_mean", "running_var", "dx", "dweight", "dbias")
-_HAS_EVAL = ("batch_norm", "instance_norm")
 _INPUTS = ("x", "dy", "weight", "bias", "running_mean", "running_var")
 
 
@@ -80,8 +79,9 @@ class _Context:
         self.eta_a = eta(self.p.accumulate)
         self.model = self.p.summation
         self.lam = float(self.p.lam)
-        self.center = case.op != "rms_norm"
-        self.train = case.mode == "train" or case.op not in _HAS_EVAL
+        self.spec = ops.get(case.op)
+        self.center = self.spec.centered
+        self.train = case.mode == "train" or not self.spec.has_eval
         self.eps = float(case.eps)
         self.placement = conventions.eps_placement
         self.inp = inputs64
@@ -249,7 +249,7 @@ def _stat_output(name: str):
         if not ctx.train:
             raise ValueError(f"output {name!r} is a saved batch statistic; case {ctx.case.id} is in eval mode")
         if name == "mean" and not ctx.center:
-            raise ValueError("output 'mean' is not defined for rms_norm (no centering)")
+            raise ValueError(f"output 'mean' is not defined for {ctx.case.op} (no centering)")
         u_o = ctx.u_out(name)
         st = ctx.stats(u_o)
         n = st.n
@@ -291,8 +291,8 @@ def _stat_output(name: str):
 def _running(name: str):
     def build(ctx: _Context, expected: np.ndarray):
         case, conv, grp = ctx.case, ctx.conv, ctx.grp
-        if case.op not in _HAS_EVAL or not ctx.train:
-            raise ValueError(f"output {name!r} needs a training-mode batch_norm or instance_norm case, "
+        if not ctx.spec.has_eval or not ctx.train:
+            raise ValueError(f"output {name!r} needs a training-mode {' or '.join(ops.with_eval())} case, "
                              f"received {case.id}")
         u_o = ctx.u_out(name)
         st = ctx.stats(u_o)
@@ -307,7 +307,7 @@ def _running(name: str):
                 s, bs = st.v, st.b_var
             s = np.broadcast_to(s, st.v.shape)
             bs = np.broadcast_to(bs, st.v.shape)
-            if case.op == "instance_norm":
+            if ctx.spec.running_from_samples:
                 # Per-channel average over the N instances (axis 0 of the view).
                 nb = st.v.shape[0]
                 s_avg = np.mean(s, axis=0, keepdims=True)
@@ -329,7 +329,7 @@ def _running(name: str):
             vals = _final(pre, new, ctx.u_p, ctx.eta_p)
         what = "B_mu" if name == "running_mean" else (
             "n/(n-1) (max(B_v-, B_v+) + 2 u_o v)" if conv.running_var_estimator == "unbiased" else "max(B_v-, B_v+)")
-        if case.op == "instance_norm":
+        if ctx.spec.running_from_samples:
             what = f"mean over N of {what} + gamma_N mean|s| + u_o |s|"
         f = (f"|c_s| B_s + 3 u_o (|running| + |s|) + u_o |new| + final u_p |new|, B_s = {what}, {f_c}; "
              + ctx.stats_text(st))

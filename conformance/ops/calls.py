@@ -1,33 +1,27 @@
-"""What each op means for the harness: the oracle call and the kernel's keyword arguments.
+"""What each op means for the harness at call time: the oracle call and the kernel's keyword arguments.
 
 Inputs are a dict of arrays: x, dy, weight, bias, running_mean, running_var
 (None where a case has none). The oracle sees them upcast to float64 after
 they were rounded to the kernel's dtypes, so a comparison measures the
-kernel's own error, not the rounding of its inputs.
+kernel's own error, not the rounding of its inputs. Everything op-specific
+comes from the op's description (conformance.ops.get(case.op)).
 """
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 import refnorm
 
-from .cases.model import Case
-from .kernel import Conventions
+from .registry import get
 
-__all__ = ["forward_outputs", "oracle_forward", "oracle_backward", "kernel_kwargs", "saved_form", "HAS_EVAL"]
+if TYPE_CHECKING:
+    from ..cases.model import Case
+    from ..kernel import Conventions
 
-HAS_EVAL = ("batch_norm", "instance_norm")
-
-
-def _op_kwargs(case: Case) -> dict[str, Any]:
-    if case.op in ("layer_norm", "rms_norm"):
-        return {"normalized_shape": case.normalized_shape}
-    if case.op == "group_norm":
-        return {"num_groups": case.groups, "axis": case.channel_axis}
-    return {"axis": case.channel_axis}
+__all__ = ["forward_outputs", "oracle_forward", "oracle_backward", "kernel_kwargs", "saved_form"]
 
 
 def _f64(a):
@@ -36,41 +30,29 @@ def _f64(a):
 
 def oracle_forward(case: Case, conv: Conventions, inp: dict[str, Any]) -> refnorm.NormForward:
     """The float64 oracle's forward pass for the case, under the kernel's conventions."""
+    spec = get(case.op)
     x, w, b = _f64(inp["x"]), _f64(inp.get("weight")), _f64(inp.get("bias"))
-    kw = dict(eps=case.eps, eps_placement=conv.eps_placement, **_op_kwargs(case))
-    if case.op in HAS_EVAL:
+    kw = dict(eps=case.eps, eps_placement=conv.eps_placement, **spec.kwargs(case))
+    if spec.has_eval:
         kw.update(training=case.mode == "train",
                   momentum_convention=conv.momentum_convention,
                   running_var_estimator=conv.running_var_estimator)
         if case.mode == "eval" or case.running:
             kw.update(running_mean=_f64(inp["running_mean"]), running_var=_f64(inp["running_var"]),
                       momentum=case.momentum, batches_seen=case.batches_seen)
-        fn = refnorm.batch_norm_forward if case.op == "batch_norm" else refnorm.instance_norm_forward
-        return fn(x, w, b, **kw)
-    fn = {"layer_norm": refnorm.layer_norm_forward, "rms_norm": refnorm.rms_norm_forward}.get(case.op)
-    if fn is not None:
-        ns = kw.pop("normalized_shape")
-        return fn(x, ns, w, b, **kw)
-    g = kw.pop("num_groups")
-    return refnorm.group_norm_forward(x, g, w, b, **kw)
+    return spec.forward(x, weight=w, bias=b, **kw)
 
 
 def oracle_backward(case: Case, conv: Conventions, inp: dict[str, Any]) -> refnorm.NormBackward:
     """The oracle's backward pass (statistics recomputed from x in float64, or the running ones in eval)."""
+    spec = get(case.op)
     x, dy, w = _f64(inp["x"]), _f64(inp["dy"]), _f64(inp.get("weight"))
-    kw = dict(eps=case.eps, eps_placement=conv.eps_placement, **_op_kwargs(case))
-    if case.op in HAS_EVAL:
+    kw = dict(eps=case.eps, eps_placement=conv.eps_placement, **spec.kwargs(case))
+    if spec.has_eval:
         kw["training"] = case.mode == "train"
         if case.mode == "eval":
             kw.update(running_mean=_f64(inp["running_mean"]), running_var=_f64(inp["running_var"]))
-        fn = refnorm.batch_norm_backward if case.op == "batch_norm" else refnorm.instance_norm_backward
-        return fn(dy, x, w, **kw)
-    fn = {"layer_norm": refnorm.layer_norm_backward, "rms_norm": refnorm.rms_norm_backward}.get(case.op)
-    if fn is not None:
-        ns = kw.pop("normalized_shape")
-        return fn(dy, x, ns, w, **kw)
-    g = kw.pop("num_groups")
-    return refnorm.group_norm_backward(dy, x, g, w, **kw)
+    return spec.backward(dy, x, weight=w, **kw)
 
 
 def saved_form(name: str, fwd: refnorm.NormForward, case: Case) -> np.ndarray:
@@ -96,7 +78,7 @@ def forward_outputs(case: Case, conv: Conventions, fwd: refnorm.NormForward, dec
     if case.mode == "train":
         for s in conv.saved:
             out[s] = saved_form(s, fwd, case)
-        if case.running and updates_running and case.op in HAS_EVAL:
+        if case.running and updates_running and get(case.op).has_eval:
             out["running_mean"] = fwd.running_mean
             out["running_var"] = fwd.running_var
     return out
@@ -104,12 +86,13 @@ def forward_outputs(case: Case, conv: Conventions, fwd: refnorm.NormForward, dec
 
 def kernel_kwargs(case: Case, entry: str, inp: dict[str, Any], saved: dict[str, Any] | None = None) -> dict[str, Any]:
     """Keyword arguments for a kernel entry point (see docs/kernel-interface.md)."""
-    kw: dict[str, Any] = {"x": inp["x"], "weight": inp.get("weight"), "eps": case.eps, **_op_kwargs(case)}
+    spec = get(case.op)
+    kw: dict[str, Any] = {"x": inp["x"], "weight": inp.get("weight"), "eps": case.eps, **spec.kwargs(case)}
     if entry in ("forward", "forward_eval"):
         kw["bias"] = inp.get("bias")
     if entry in ("backward", "backward_eval"):
         kw["dy"] = inp["dy"]
-    if case.op in HAS_EVAL:
+    if spec.has_eval:
         kw["training"] = entry in ("forward", "backward")
         if entry in ("forward_eval", "backward_eval") or (entry == "forward" and case.running):
             kw["running_mean"] = inp.get("running_mean")

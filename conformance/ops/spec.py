@@ -1,0 +1,147 @@
+"""OpSpec: everything the harness knows about one operation, in one frozen record.
+
+Every consumer (the catalog, the input generators, the kernel declaration's checks, the oracle
+calls, the bounds, the report) looks an op up with ``conformance.ops.get(name)`` and reads its
+fields; none of them branches on an op's name. A field a consumer lacks is added here, not as a
+name test in the consumer (docs/adding-an-operation.md).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable, Protocol
+
+from .axes import View
+
+__all__ = ["OpSpec", "CatalogShapes", "Axes", "STATISTICS", "SAVED_FORMS", "GRADS", "RUNNING_OUTPUTS",
+           "RUNNING_MODES", "VALUE_KINDS", "PARAM_KINDS"]
+
+#: Forms of the saved dispersion statistic: rstd = 1/sqrt(var+eps), var (biased),
+#: var_unbiased (M2/(n-1), what TF's fused_batch_norm returns), std = sqrt(var+eps).
+SAVED_FORMS = ("rstd", "var", "var_unbiased", "std")
+#: Every statistic a forward pass may save: the mean, then the dispersion forms.
+STATISTICS = ("mean",) + SAVED_FORMS
+GRADS = ("dx", "dweight", "dbias")
+RUNNING_OUTPUTS = ("running_mean", "running_var")
+
+#: (mode, running, words): the kinds of call of an op with running statistics, as the report names
+#: a kind that no case ran.
+RUNNING_MODES = (("train", False, "training without running statistics"),
+                 ("train", True, "training with running-statistic updates"),
+                 ("eval", False, "eval mode (running statistics)"))
+
+#: The value kinds every op's catalog draws x from, in catalog order (near_overflow is added per
+#: dtype by the catalog: it applies where the accumulation format has range to spare).
+VALUE_KINDS = ("normal", "cancellation", "constant", "heavy_tail", "subnormal", "zeros", "nonfinite")
+#: (weight, bias) kinds of the catalog's parameter cases, in catalog order.
+PARAM_KINDS = (("none", "none"), ("random", "none"), ("zero", "random"), ("negative", "zero"), ("ones", "random"))
+
+Shape = tuple[int, ...]
+
+
+class Axes(Protocol):
+    """How an op's statistics group the axes of x (conformance.ops.axes has the three rules)."""
+
+    layouts: tuple[str, ...]
+    strides: tuple[str, ...]
+    takes_groups: bool
+
+    def case_fields(self, k: int) -> dict[str, int]: ...
+    def kwargs(self, case: Any) -> dict[str, Any]: ...
+    def group_length(self, case: Any) -> int: ...
+    def param_length(self, case: Any) -> int: ...
+    def param_shape(self, case: Any) -> tuple[int, ...]: ...
+    def view(self, case: Any) -> View: ...
+
+
+@dataclass(frozen=True)
+class CatalogShapes:
+    """The shapes of an op's catalog, each as (shape, k), in catalog order.
+
+    k is what the op's Axes rule makes of it (``Axes.case_fields``): the number of groups for
+    channel ops, whose shapes are written channels first (the catalog moves C last for the
+    channels_last layout), or the number of normalized trailing axes for layer and RMS norm.
+
+    smoke, standard : the shape cases of those tiers (each in every layout of the op).
+    exhaustive : shapes the exhaustive tier adds to the standard ones.
+    mid : the workhorse shape on which value kinds, parameters, strides and modes vary.
+    long_cancellation : (shape, k, layout): the cancellation case on a longer reduction.
+    long : a shape with 2^20 elements per statistic (the standard tier's long reductions).
+    """
+
+    smoke: tuple[tuple[Shape, int], ...]
+    standard: tuple[tuple[Shape, int], ...]
+    exhaustive: tuple[tuple[Shape, int], ...]
+    mid: tuple[Shape, int]
+    long_cancellation: tuple[Shape, int, str]
+    long: tuple[Shape, int]
+
+    def for_tier(self, tier: str) -> tuple[tuple[Shape, int], ...]:
+        if tier == "smoke":
+            return self.smoke
+        return self.standard + (self.exhaustive if tier == "exhaustive" else ())
+
+
+@dataclass(frozen=True)
+class OpSpec:
+    """One normalization operation as the harness sees it.
+
+    name : the op's name in kernels, case ids and reports.
+    axes : how its statistics group the axes (lengths, statistic and parameter shapes, layouts,
+        stride kinds, the structural keyword arguments: conformance.ops.axes).
+    forward, backward : the oracle's functions, called as forward(x, weight=, bias=, **kw) and
+        backward(dy, x, weight=, **kw) with kw = axes.kwargs(case) and the conventions.
+    has_eval : an eval mode with running statistics (forward_eval/backward_eval entry points,
+        running_mean/running_var arguments and outputs, momentum and batches_seen in training).
+    centered : subtracts a mean (False: RMS norm, whose statistic is the mean square; no "mean"
+        to save, and the bounds drop the mean's error terms).
+    running_from_samples : the running statistics are the batch mean of per-sample statistics
+        (instance norm: (N, C) statistics, (C,) running statistics); the bound adds that mean's error.
+    shapes : the catalog's shapes.
+    value_kinds : the value kinds of its value cases.
+    param_kinds : the (weight, bias) kinds of its parameter cases.
+    default_bias : the bias kind of its other cases ("none" where the libraries define no bias).
+    long_running : the long cancellation case also updates running statistics.
+    modes : (mode, running, words) kinds of call the report checks that some case ran.
+    """
+
+    name: str
+    axes: Axes
+    forward: Callable
+    backward: Callable
+    shapes: CatalogShapes
+    has_eval: bool = False
+    centered: bool = True
+    running_from_samples: bool = False
+    value_kinds: tuple[str, ...] = VALUE_KINDS
+    param_kinds: tuple[tuple[str, str], ...] = PARAM_KINDS
+    default_bias: str = "random"
+    long_running: bool = False
+    modes: tuple[tuple[str, bool, str], ...] = ()
+
+    @property
+    def saved(self) -> tuple[str, ...]:
+        """The statistics its forward may save (conventions.saved names from these)."""
+        return STATISTICS if self.centered else SAVED_FORMS
+
+    @property
+    def running_outputs(self) -> tuple[str, ...]:
+        return RUNNING_OUTPUTS if self.has_eval else ()
+
+    @property
+    def grads(self) -> tuple[str, ...]:
+        return GRADS
+
+    @property
+    def outputs(self) -> tuple[str, ...]:
+        """Every output a kernel of this op may be checked on."""
+        return ("y",) + self.saved + self.running_outputs + self.grads
+
+    @property
+    def entry_points(self) -> tuple[str, ...]:
+        return ("forward", "forward_eval", "backward", "backward_eval") if self.has_eval else ("forward", "backward")
+
+    def kwargs(self, case: Any) -> dict[str, Any]:
+        """The structural keyword arguments of its entry points and oracle calls (axis, num_groups,
+        normalized_shape) for the case."""
+        return self.axes.kwargs(case)
