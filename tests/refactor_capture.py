@@ -145,6 +145,13 @@ def catalogs() -> dict[str, Any]:
     return out
 
 
+def versions() -> dict[str, str]:
+    """The libraries whose arithmetic and random streams the record depends on."""
+    import ml_dtypes
+
+    return {"numpy": np.__version__, "ml_dtypes": ml_dtypes.__version__}
+
+
 def path_for(op: str) -> Path:
     return DATA / f"{op}.json.gz"
 

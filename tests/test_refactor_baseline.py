@@ -6,6 +6,8 @@ described in tests/refactor_capture.py: per standard-tier case of every op and d
 digests of the generated inputs and of what each kernel entry point received, digests of the
 oracle's outputs and of the elementwise bounds, and every metric, bound summary and verdict of
 the results document, for a fixed NumPy kernel and seed; and the case ids of every tier.
+versions.json names the NumPy and ml_dtypes that made it: their random streams and float32 sums
+are part of what is recorded, and a failure says when they differ.
 
 A fresh record must equal the stored one. A field that appears only in the fresh record (a
 metric added to the results document later) is not a change of what existed and is allowed;
@@ -19,6 +21,7 @@ the record and says so in its commit.
 from __future__ import annotations
 
 import functools
+import json
 from typing import Any
 
 import pytest
@@ -29,6 +32,15 @@ import refactor_capture as rc
 @functools.lru_cache(maxsize=None)
 def _stored(op: str) -> dict[str, Any]:
     return rc.read(rc.path_for(op))
+
+
+def _versions_note() -> str:
+    """Where the libraries differ from those that made the record: a likely cause of a difference."""
+    old = json.loads((rc.DATA / "versions.json").read_text())
+    now = rc.versions()
+    moved = [f"{k} {old[k]} -> {now.get(k)}" for k in old if old[k] != now.get(k)]
+    return ("\nnote: the record was made with " + ", ".join(moved) + "; a library that changed its random "
+            "streams or its sums changes the record without any change here") if moved else ""
 
 
 def _differences(old: Any, new: Any, path: str, out: list[str], limit: int = 12) -> None:
@@ -62,7 +74,7 @@ def test_standard_tier_unchanged(op, dtype):
         f"{op}/{dtype}: the standard tier's case ids or their order changed"
     diffs: list[str] = []
     _differences(old, new, f"{op}/{dtype}", diffs)
-    assert not diffs, "the harness's results changed:\n" + "\n".join(diffs)
+    assert not diffs, "the harness's results changed:\n" + "\n".join(diffs) + _versions_note()
 
 
 @functools.lru_cache(maxsize=None)

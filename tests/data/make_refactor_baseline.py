@@ -9,6 +9,7 @@ catalog, the inputs, the bounds or the verdicts, and say so in that commit:
 
 from __future__ import annotations
 
+import json
 import sys
 import time
 from pathlib import Path
@@ -31,6 +32,7 @@ def main(argv: list[str]) -> int:
         n = sum(len(r["cases"]) for r in rec.values())
         print(f"{op}: {n} cases in {time.perf_counter() - t0:.1f} s, "
               f"{rc.path_for(op).stat().st_size / 1024:.0f} KiB")
+    (rc.DATA / "versions.json").write_text(json.dumps(rc.versions(), indent=1, sort_keys=True) + "\n")
     if not argv:
         rc.write(rc.DATA / "catalogs.json.gz", rc.catalogs())
         print(f"catalogs: {(rc.DATA / 'catalogs.json.gz').stat().st_size / 1024:.0f} KiB")
