@@ -220,7 +220,9 @@ def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
 class _PipeSafe:
     """A stdout that a closed pipe cannot break: after the first BrokenPipeError it writes nothing,
     and the file descriptor is pointed at os.devnull so that the interpreter's last flush succeeds
-    (the Python documentation's recipe, library/signal.html, "Note on SIGPIPE")."""
+    (the Python documentation's recipe, library/signal.html, "Note on SIGPIPE"). Text the stream's
+    encoding cannot hold (a file name's undecodable bytes, kept by os.fsdecode as surrogates) is
+    written with backslash escapes, as Python's own stderr does, instead of raising."""
 
     def __init__(self, stream: Any):
         self._stream, self.broken = stream, False
@@ -237,7 +239,11 @@ class _PipeSafe:
     def write(self, text: str) -> int:
         if not self.broken:
             try:
-                return self._stream.write(text)
+                try:
+                    return self._stream.write(text)
+                except UnicodeEncodeError:
+                    enc = getattr(self._stream, "encoding", None) or "utf-8"
+                    self._stream.write(text.encode(enc, "backslashreplace").decode(enc))
             except BrokenPipeError:
                 self._broke()
         return len(text)

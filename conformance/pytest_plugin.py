@@ -65,7 +65,7 @@ class _State:
 
         opt = config.getoption
         prof_path = opt("refnorm_profile")
-        self.profile = load_profile(prof_path) if prof_path else None
+        self.profile = load_profile(prof_path) if prof_path is not None else None
         dts = [d for v in opt("refnorm_dtype") for d in v.split(",") if d]
         self.plans = plan_runs(self.profile, specs=opt("refnorm_kernel"), tier=opt("refnorm_tier"),
                                dtypes=dts or None, seed=opt("refnorm_seed"), timeout=opt("refnorm_timeout"),
@@ -135,7 +135,7 @@ class _State:
 
 def pytest_configure(config: pytest.Config) -> None:
     config.addinivalue_line("markers", "refnorm: a case of the refnorm conformance catalog")
-    if not (config.getoption("refnorm_kernel") or config.getoption("refnorm_profile")):
+    if not config.getoption("refnorm_kernel") and config.getoption("refnorm_profile") is None:
         return
     from conformance.gate.plan import PlanError
     from conformance.gate.profile import ProfileError

@@ -115,8 +115,11 @@ _DESTINATIONS = {
     "a folder under a file for --report": (lambda t: ["--report", str(t / "plain.txt" / "rep")],
                                            ["--report", "not a folder"]),
     # NAME_MAX, 255 bytes per name on Linux's common file systems
-    "a name over 255 bytes": (lambda t: ["--json", str(t / ("r" * 300 + ".json"))], ["--json", "over the limit of 255"]),
+    "a name over 255 bytes": (lambda t: ["--json", str(t / ("r" * 300 + ".json"))],
+                              ["--json", "over the limit of 255"]),
     "an empty --json": (lambda t: ["--json", ""], ["--json", "empty"]),
+    # a FIFO of our own stands for a device (never a real one: a regression would replace it)
+    "a pipe given for a file": (lambda t: ["--json", str(t / "a_fifo")], ["--json", "device, pipe or socket"]),
 }
 
 
@@ -124,6 +127,10 @@ _DESTINATIONS = {
 def test_unwritable_destinations_exit_2_before_the_run(what, tmp_path, capsys):
     (tmp_path / "plain.txt").write_text("x")
     (tmp_path / "a_dir").mkdir()
+    if not hasattr(os, "mkfifo") and "pipe" in what:
+        pytest.skip("no FIFOs on this platform")
+    if hasattr(os, "mkfifo"):
+        os.mkfifo(tmp_path / "a_fifo")
     make, words = _DESTINATIONS[what]
     assert _check(f"{KERNELS}:good_layer_norm", "--tier", "smoke", "--quiet", *make(tmp_path)) == 2
     err = _no_run(capsys)
@@ -132,7 +139,8 @@ def test_unwritable_destinations_exit_2_before_the_run(what, tmp_path, capsys):
 
 
 @pytest.mark.skipif(not Path("/proc/self").is_dir(), reason="needs Linux's /proc (refuses new files, even to root)")
-@pytest.mark.parametrize("target, words", [("/proc", "is a folder"), ("/proc/refnorm-junit.xml", "cannot create files")])
+@pytest.mark.parametrize("target, words", [("/proc", "is a folder"),
+                                           ("/proc/refnorm-junit.xml", "cannot create files")])
 def test_junit_into_proc_is_refused_and_leaves_no_temporary_file(target, words, capsys):
     # The old writer put its temporary file beside the target's name: '--junit /proc' left '/.proc.tmp'.
     before = set(os.listdir("/"))

@@ -7,6 +7,7 @@ correct: 1/(sqrt(var)+eps) where layer norm has 1/sqrt(var+eps), Ba, Kiros & Hin
 from __future__ import annotations
 
 import fnmatch
+import os
 import json
 import sys
 from datetime import date, timedelta
@@ -413,3 +414,25 @@ def test_profile_does_not_import_plan():
     tree = ast.parse(Path(prof_mod.__file__).read_text())
     imported = {n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and n.module}
     assert "plan" not in imported and not any(m.endswith(".plan") for m in imported)
+
+
+def test_empty_paths_are_usage_errors_not_ignored(tmp_path, capsys):
+    # Before: an empty --baseline or gate --profile was taken as "not given" without a word.
+    assert main(["check", spec("fp32"), "--quiet", "--baseline", ""]) == 2
+    assert "baseline" in capsys.readouterr().err
+    assert main(["gate", "--kernel", spec("fp32"), "--quiet", "--profile", ""]) == 2
+    assert "profile" in capsys.readouterr().err
+
+
+def test_a_file_name_stdout_cannot_encode_is_escaped_not_a_crash(tmp_path, monkeypatch):
+    # A kernel file whose name has a byte that is not UTF-8: os.fsdecode keeps it as a surrogate
+    # (PEP 383), which a strict UTF-8 stdout cannot encode. The gate prints the spec; it must not crash.
+    import io
+
+    name = os.fsdecode(b"k\xff.py")
+    k = tmp_path / name
+    k.write_text(f"import sys\nsys.path.insert(0, {str(KERNELS.parent)!r})\nfrom gate_kernels import fp32\n")
+    out = io.TextIOWrapper(io.BytesIO(), encoding="utf-8", errors="strict", write_through=True)
+    monkeypatch.setattr(sys, "stdout", out)
+    assert main(["gate", "--kernel", f"{k}:fp32", "--tier", "smoke", "--quiet"]) == 0
+    assert b"k\\udcff.py" in out.buffer.getvalue() and b"gate: PASS" in out.buffer.getvalue()

@@ -98,7 +98,7 @@ def prepare(args: argparse.Namespace) -> None:
         args._refnorm_plan = plan
         if args.baseline is None and plan.baseline is not None:
             args.baseline = str(plan.baseline)
-    if args.baseline:  # read it before the run: a bad path must not cost a run
+    if args.baseline is not None:  # read it before the run: a bad path must not cost a run
         args._refnorm_baseline_doc = _load_doc(args.baseline, "baseline")
 
 
@@ -232,13 +232,13 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
         if baseline_dir is None:
             print(f"warning: --baseline-dir {args.baseline_dir} does not exist; growth not checked")
     notes: list[str] = []
-    path = args.profile or find_profile(Path.cwd(), notes)
+    path = args.profile if args.profile is not None else find_profile(Path.cwd(), notes)
     if path is None and not args.kernel:
         raise _usage("no profile: give --profile PATH, or put refnorm.toml (or [tool.refnorm] in pyproject.toml) "
                      "in this folder, or name kernels with --kernel" + "".join(f" (note: {n})" for n in notes))
     for n in notes:
         print(f"note: {n}")
-    prof = _load_profile(str(path)) if path else None
+    prof = _load_profile(str(path)) if path is not None else None
     try:
         plans = plan_runs(prof, specs=args.kernel, tier=args.tier, dtypes=args.dtype, seed=args.seed,
                           workers=args.workers, timeout=args.timeout, growth=args.growth,

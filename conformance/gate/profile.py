@@ -199,7 +199,13 @@ def load_profile(path: str | Path) -> Profile:
     """Read and validate a profile file (pyproject.toml: its [tool.refnorm] table; else the whole file)."""
     p = Path(path)
     if not _exists(p):
-        raise ProfileError(f"profile {shown(str(p))}: no such file")
+        name = str(p) if len(str(p)) <= 300 else shown(str(p))
+        try:
+            folder = p.is_dir()
+        except (OSError, ValueError):
+            folder = False
+        raise ProfileError(f"profile {name}: " + ("is a folder, expected a profile file (refnorm.toml or "
+                                                   "pyproject.toml)" if folder else "no such file"))
     data = _read_toml(p)
     if p.name == "pyproject.toml":
         tool = data.get("tool")
