@@ -1,29 +1,44 @@
 """The command line: `refnorm check`, `refnorm cases`.
 
-Exit codes: 0 conformant; 1 not conformant; 2 bad usage, a bad kernel spec or a
-kernel that cannot load; 3 interrupted (a partial results file is still written,
-marked incomplete).
+Exit codes: 0 conformant; 1 not conformant; 2 bad usage (an option out of its limits, an
+output path that cannot be written, a bad kernel spec or a kernel that cannot load: all
+found before the first case runs; or an artefact that could not be written after the run);
+3 interrupted (a partial results file is still written, marked incomplete).
+
+Artefacts are written before anything is printed, and a closed stdout (`... | head -1`)
+changes neither the exit code nor the files.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import shlex
 import sys
-from typing import Sequence
+from typing import Any, Sequence
 
 from . import dtypes as _dtypes
 from .cases import TIERS, catalog
+from .destinations import DestinationError, file_target
 from .kernel import OPS, Kernel, KernelError, load_kernel
+from .options import DEFAULTS, number_type, tolerance_type
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 
-#: Modules that extend the command line. Each may define
-#:   add_check_arguments(parser)       options of `refnorm check`
+#: Modules that extend the command line. Each may define, called in this order by `refnorm check`:
+#:   add_check_arguments(parser)       options of `refnorm check`; run options that a profile may fill
+#:                                     (--tier, --seed, --workers, --timeout) are None when not given
 #:   add_commands(subparsers)          further subcommands (set func=fn(args, argv) -> exit code)
-#:   amend(args, doc) -> doc           change a check's results before they are printed and written
+#:   prepare(args)                     before check loads the kernel: validate options, read input files,
+#:                                     check output destinations (conformance.destinations), fill options
+#:                                     left None (a profile); raise UsageError. It may load the kernel
+#:                                     itself and leave (kernel, spec) in args.loaded_kernel
+#:   amend(args, doc) -> doc           change a check's results before they are written and printed
 #:                                     (waivers, baselines); must keep doc's schema
-#:   emit(args, doc)                   write further artefacts of a check (reports, JUnit XML)
+#:   emit(args, doc) -> [str]          write further artefacts of a check (reports, JUnit XML); return
+#:                                     lines naming them, printed after the summary
+#:   verdict_lines(args, doc) -> [str] lines printed after the verdict (the gate's decision)
+#:   exit_code(args, doc, code) -> int after every artefact is written: the exit status (the gate's)
 EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli")
 
 
@@ -44,17 +59,6 @@ class UsageError(Exception):
     """Bad usage; the message says what to change."""
 
 
-def _tolerance(text: str) -> tuple[str, tuple[float, float]]:
-    try:
-        name, _, rest = text.partition("=")
-        atol, rtol = (float(v) for v in rest.split(","))
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected OUTPUT=ATOL,RTOL (e.g. dx=1e-3,1e-2), received {text!r}")
-    if not name or atol < 0 or rtol < 0:
-        raise argparse.ArgumentTypeError(f"expected OUTPUT=ATOL,RTOL with ATOL, RTOL >= 0, received {text!r}")
-    return name, (atol, rtol)
-
-
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="refnorm", description="Check normalization kernels against a float64 oracle "
                                 "under derived tolerances.")
@@ -65,14 +69,20 @@ def build_parser() -> argparse.ArgumentParser:
                                 "returning one); with --op, a module alone picks module:OP")
     c.add_argument("--op", choices=OPS, help="the op to check (must match the kernel's declaration)")
     c.add_argument("--dtype", nargs="+", choices=_dtypes.FORMATS, help="storage dtypes (default: all declared)")
-    c.add_argument("--tier", choices=TIERS, default="standard", help="catalog tier (default: standard)")
-    c.add_argument("--seed", type=int, default=0, help="seed of the case data (default 0)")
-    c.add_argument("--case", action="append", default=[], metavar="ID", help="run only this case id (repeatable)")
-    c.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
-    c.add_argument("--timeout", type=float, default=120.0, help="per-case timeout in seconds (default 120)")
+    # None means "not given": a profile (--profile) may fill it, else DEFAULTS applies.
+    c.add_argument("--tier", choices=TIERS, help=f"catalog tier (default: {DEFAULTS['tier']})")
+    c.add_argument("--seed", type=number_type("seed"), help=f"seed of the case data, 0 <= N < 2**63 "
+                   f"(default {DEFAULTS['seed']})")
+    c.add_argument("--case", action="append", default=[], metavar="ID",
+                   help="run only this case id (repeatable; a repeated id runs once)")
+    c.add_argument("--workers", type=number_type("workers"), help=f"worker processes, 1 to 256 "
+                   f"(default {DEFAULTS['workers']})")
+    c.add_argument("--timeout", type=number_type("timeout"), help="per-case timeout in seconds, > 0 and at most "
+                   f"86400 (default {DEFAULTS['timeout']:g})")
     c.add_argument("--json", metavar="PATH", help="write the results document (JSON) here")
-    c.add_argument("--tolerance", action="append", type=_tolerance, default=[], metavar="OUTPUT=ATOL,RTOL",
-                   help="replace the derived bound of one output by atol + rtol*|oracle| (repeatable)")
+    c.add_argument("--tolerance", action="append", type=tolerance_type, default=[], metavar="OUTPUT=ATOL,RTOL",
+                   help="replace the derived bound of one output by atol + rtol*|oracle| (repeatable; ATOL, RTOL "
+                        "finite, >= 0 and at most 1e100)")
     c.add_argument("--quiet", action="store_true", help="no progress output")
     c.set_defaults(func=cmd_check)
     for ext in _extensions():
@@ -90,11 +100,24 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def resolve_kernel(spec: str, op: str | None) -> tuple[Kernel, str]:
-    """Load the kernel named by spec (module alone + --op means module:op); check --op agrees."""
-    if ":" not in spec and op:
-        spec = f"{spec}:{op}"
-    kernel = load_kernel(spec)
+def check_spec(spec: str, op: str | None) -> str:
+    """The spec to load: a module alone with --op means module:op."""
+    return f"{spec}:{op}" if ":" not in spec and op else spec
+
+
+def resolve_kernel(spec: str, op: str | None, loaded: Kernel | None = None) -> tuple[Kernel, str]:
+    """Load the kernel named by spec (module alone + --op means module:op), unless ``loaded`` is it
+    already; check --op agrees."""
+    spec = check_spec(spec, op)
+    if loaded is not None:
+        kernel = loaded
+    else:
+        try:
+            kernel = load_kernel(spec)
+        except (OSError, ValueError) as e:  # KernelError is handled by main; these are paths the OS refuses
+            if isinstance(e, KernelError):
+                raise
+            raise UsageError(f"kernel spec {spec!r}: {e}") from None
     if op and kernel.op != op:
         raise UsageError(f"--op is {op}, but kernel {kernel.name!r} from {spec} declares op {kernel.op}")
     return kernel, spec
@@ -103,10 +126,6 @@ def resolve_kernel(spec: str, op: str | None) -> tuple[Kernel, str]:
 def run_options(args: argparse.Namespace, kernel: Kernel, argv: Sequence[str]):
     from .run import RunOptions
 
-    if args.workers < 1:
-        raise UsageError(f"--workers is {args.workers}, expected an integer >= 1")
-    if args.timeout <= 0:
-        raise UsageError(f"--timeout is {args.timeout}, expected a positive number of seconds")
     if args.dtype:
         undeclared = [d for d in args.dtype if d not in kernel.dtypes]
         if undeclared:
@@ -115,9 +134,16 @@ def run_options(args: argparse.Namespace, kernel: Kernel, argv: Sequence[str]):
     for cid in args.case:
         if not cid.startswith(kernel.op + "/"):
             raise UsageError(f"--case {cid!r} is not a {kernel.op} case (ids start with the op)")
-    return RunOptions(tier=args.tier, dtypes=tuple(args.dtype) if args.dtype else None,
-                      case_ids=tuple(args.case), seed=args.seed, workers=args.workers, timeout=args.timeout,
-                      overrides=dict(args.tolerance), command="refnorm " + shlex.join(argv))
+    # a dtype or case named twice runs once
+    return RunOptions(tier=args.tier, dtypes=tuple(dict.fromkeys(args.dtype)) if args.dtype else None,
+                      case_ids=tuple(dict.fromkeys(args.case)), seed=args.seed, workers=args.workers,
+                      timeout=args.timeout, overrides=dict(args.tolerance), command="refnorm " + shlex.join(argv))
+
+
+def _prepare(args: argparse.Namespace) -> None:
+    """check's own options, before the kernel loads: the --json destination."""
+    if args.json is not None:
+        args.json = file_target(args.json, "--json")
 
 
 def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
@@ -125,28 +151,62 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
     from .run import run_check
     from .summary import summary_table, verdict_lines
 
-    kernel, spec = resolve_kernel(args.spec, args.op)
+    exts = _extensions()
+    try:
+        _prepare(args)
+        for ext in exts:
+            if hasattr(ext, "prepare"):
+                ext.prepare(args)
+    except DestinationError as e:
+        raise UsageError(str(e)) from None
+    for k, v in DEFAULTS.items():
+        if getattr(args, k, None) is None:
+            setattr(args, k, v)
+    loaded = getattr(args, "loaded_kernel", None)
+    kernel, spec = resolve_kernel(loaded[1] if loaded else args.spec, args.op, loaded[0] if loaded else None)
     opts = run_options(args, kernel, argv)
     try:
         doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
-    for ext in _extensions():
+    for ext in exts:
         if hasattr(ext, "amend"):
             doc = ext.amend(args, doc)
+    # Artefacts first: nothing printed (to a closed pipe, say) can cost a file.
+    written: list[str] = []
+    unwritten: list[str] = []
+    if args.json:
+        try:
+            written.append(f"results: {write_json_atomic(args.json, doc)}")
+        except OSError as e:
+            unwritten.append(f"--json {args.json}: {e.strerror or e}")
+    for ext in exts:
+        if hasattr(ext, "emit"):
+            try:
+                written += ext.emit(args, doc) or []
+            except OSError as e:
+                unwritten.append(f"{e.filename or 'an artefact'}: {e.strerror or e}")
     print(summary_table(doc))
     print()
     for line in verdict_lines(doc):
         print(line)
-    if args.json:
-        path = write_json_atomic(args.json, doc)
-        print(f"results: {path}")
-    for ext in _extensions():
-        if hasattr(ext, "emit"):
-            ext.emit(args, doc)
+    for ext in exts:
+        if hasattr(ext, "verdict_lines"):
+            for line in ext.verdict_lines(args, doc):
+                print(line)
+    for line in written:
+        print(line)
+    for line in unwritten:
+        print(f"refnorm: error: could not write {line}", file=sys.stderr)
     if not doc["complete"]:
         return EXIT_INTERRUPTED
-    return EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
+    if unwritten:
+        return EXIT_USAGE
+    code = EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
+    for ext in exts:
+        if hasattr(ext, "exit_code"):
+            code = ext.exit_code(args, doc, code)
+    return code
 
 
 def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
@@ -157,6 +217,59 @@ def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
     return EXIT_OK
 
 
+class _PipeSafe:
+    """A stdout that a closed pipe cannot break: after the first BrokenPipeError it writes nothing,
+    and the file descriptor is pointed at os.devnull so that the interpreter's last flush succeeds
+    (the Python documentation's recipe, library/signal.html, "Note on SIGPIPE"). Text the stream's
+    encoding cannot hold (a file name's undecodable bytes, kept by os.fsdecode as surrogates) is
+    written with backslash escapes, as Python's own stderr does, instead of raising."""
+
+    def __init__(self, stream: Any):
+        self._stream, self.broken = stream, False
+
+    def _broke(self) -> None:
+        self.broken = True
+        try:
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, self._stream.fileno())
+            os.close(devnull)
+        except (OSError, ValueError, AttributeError):  # no file descriptor (a test's stand-in)
+            pass
+
+    def write(self, text: str) -> int:
+        if not self.broken:
+            try:
+                try:
+                    return self._stream.write(text)
+                except UnicodeEncodeError:
+                    enc = getattr(self._stream, "encoding", None) or "utf-8"
+                    self._stream.write(text.encode(enc, "backslashreplace").decode(enc))
+            except BrokenPipeError:
+                self._broke()
+        return len(text)
+
+    def flush(self) -> None:
+        if not self.broken:
+            try:
+                self._stream.flush()
+            except BrokenPipeError:
+                self._broke()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._stream, name)
+
+
+def _closed_stdout_safe(func, args: argparse.Namespace, argv: Sequence[str]) -> int:
+    """Run a command with a stdout that a closed pipe cannot break (its exit code stays its own)."""
+    saved = sys.stdout
+    sys.stdout = safe = _PipeSafe(saved)
+    try:
+        return func(args, argv)
+    finally:
+        safe.flush()
+        sys.stdout = saved
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     parser = build_parser()
@@ -165,7 +278,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SystemExit as e:  # argparse's own usage errors exit with 2 already
         return int(e.code or 0)
     try:
-        return args.func(args, argv)
+        return _closed_stdout_safe(args.func, args, argv)
     except (UsageError, KernelError) as e:
         print(f"refnorm: error: {e}", file=sys.stderr)
         return EXIT_USAGE

@@ -24,6 +24,10 @@ _STATE = pytest.StashKey["_State"]()
 
 
 def pytest_addoption(parser: pytest.Parser) -> None:
+    # The numbers are checked against the limits that `refnorm check` and the profile use
+    # (conformance.options): a bad value is pytest's usage error before collection.
+    from conformance.options import number_type
+
     g = parser.getgroup("refnorm", "conformance of normalization kernels (refnorm)")
     g.addoption("--refnorm-kernel", action="append", default=[], metavar="SPEC",
                 help="check this kernel (module:attr or path/file.py:attr); repeatable")
@@ -34,14 +38,16 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                 help="catalog tier (default: the profile's, else standard)")
     g.addoption("--refnorm-dtype", action="append", default=[], metavar="D",
                 help="storage dtype to check (repeatable or comma-separated; default: all the kernel declares)")
-    g.addoption("--refnorm-seed", type=int, metavar="N", help="seed of the case data (default: the profile's, else 0)")
+    g.addoption("--refnorm-seed", type=number_type("seed"), metavar="N",
+                help="seed of the case data (default: the profile's, else 0)")
     g.addoption("--refnorm-case", action="append", default=[], metavar="ID", help="only this case id (repeatable)")
-    g.addoption("--refnorm-timeout", type=float, metavar="S",
+    g.addoption("--refnorm-timeout", type=number_type("timeout"), metavar="S",
                 help="per-case timeout in seconds (default: the profile's, else 120)")
     g.addoption("--refnorm-baseline", metavar="OLD.json",
                 help="fail a passed output whose budget used grew more than --refnorm-growth times over this file")
-    g.addoption("--refnorm-growth", type=float, metavar="F", help="allowed growth over the baseline (default 2)")
-    g.addoption("--refnorm-growth-floor", type=float, metavar="B",
+    g.addoption("--refnorm-growth", type=number_type("growth"), metavar="F",
+                help="allowed growth over the baseline (default 2)")
+    g.addoption("--refnorm-growth-floor", type=number_type("growth_floor"), metavar="B",
                 help="budgets below B count as B when measuring growth (default 0.01)")
 
 
@@ -59,7 +65,7 @@ class _State:
 
         opt = config.getoption
         prof_path = opt("refnorm_profile")
-        self.profile = load_profile(prof_path) if prof_path else None
+        self.profile = load_profile(prof_path) if prof_path is not None else None
         dts = [d for v in opt("refnorm_dtype") for d in v.split(",") if d]
         self.plans = plan_runs(self.profile, specs=opt("refnorm_kernel"), tier=opt("refnorm_tier"),
                                dtypes=dts or None, seed=opt("refnorm_seed"), timeout=opt("refnorm_timeout"),
@@ -129,7 +135,7 @@ class _State:
 
 def pytest_configure(config: pytest.Config) -> None:
     config.addinivalue_line("markers", "refnorm: a case of the refnorm conformance catalog")
-    if not (config.getoption("refnorm_kernel") or config.getoption("refnorm_profile")):
+    if not config.getoption("refnorm_kernel") and config.getoption("refnorm_profile") is None:
         return
     from conformance.gate.plan import PlanError
     from conformance.gate.profile import ProfileError

@@ -11,7 +11,6 @@ import math
 import os
 import platform
 import sys
-import tempfile
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -197,25 +196,13 @@ def build_document(kernel_decl: dict[str, Any], run: dict[str, Any], cases: list
 
 def write_json_atomic(path: str | os.PathLike, doc: dict[str, Any]) -> Path:
     """Write JSON to a temporary file beside ``path`` and rename it into place (atomic on POSIX)."""
-    p = Path(path)
-    p.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
-    try:
-        with os.fdopen(fd, "w") as f:
-            json.dump(doc, f, indent=1, allow_nan=False)
-            f.write("\n")
-        # mkstemp creates the file 0600; give it the mode a plain open() would (umask applied).
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp, 0o666 & ~mask)
-        os.replace(tmp, p)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    return p
+    from .destinations import write_atomic
+
+    def dump(f) -> None:
+        json.dump(doc, f, indent=1, allow_nan=False)
+        f.write("\n")
+
+    return write_atomic(path, dump)
 
 
 def load(path: str | os.PathLike) -> dict[str, Any]:

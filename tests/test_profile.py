@@ -7,6 +7,7 @@ correct: 1/(sqrt(var)+eps) where layer norm has 1/sqrt(var+eps), Ba, Kiros & Hin
 from __future__ import annotations
 
 import fnmatch
+import os
 import json
 import sys
 from datetime import date, timedelta
@@ -283,3 +284,155 @@ def test_the_command_line_wins_over_the_profile_even_with_a_default_value(tmp_pa
     assert (doc["run"]["seed"], doc["run"]["timeout_s"]) == (0, 60.0)
     _, doc, _ = check(tmp_path, "fp32", *one)  # no profile: the command's own defaults
     assert (doc["run"]["seed"], doc["run"]["timeout_s"]) == (0, 120.0)
+
+
+# ---------------------------------------------------------------- hostile profile files
+@pytest.mark.parametrize("raw, words", [
+    # TOML v1.0.0: "A TOML file must be a valid UTF-8 encoded Unicode document."
+    (b"tier = 'sm\xffoke'\n", "not valid UTF-8"),
+    (b"\xff\xfet\x00i\x00e\x00r\x00", "not valid UTF-8"),  # UTF-16 with its byte-order mark
+    ("x = " + "[" * 3000 + "]" * 3000 + "\n", "nested too deeply"),
+    # CPython's int(str) limit (sys.get_int_max_str_digits(), 4300 digits by default) from inside tomllib
+    ("seed = " + "9" * 5000 + "\n", "4300 digits"),
+    ("tier = \n", "not valid TOML"),
+])
+def test_unreadable_profiles_are_profile_errors_naming_the_file(tmp_path, raw, words):
+    p = tmp_path / "refnorm.toml"
+    p.write_bytes(raw if isinstance(raw, bytes) else raw.encode())
+    with pytest.raises(ProfileError) as e:
+        load_profile(p)
+    assert str(p) in str(e.value) and words in str(e.value)
+
+
+@pytest.mark.parametrize("text, key, limit", [
+    ("timeout = " + "9" * 400, "timeout", "86400"),
+    ("timeout = 99999999999999999999", "timeout", "86400"),
+    ("timeout = 1e7", "timeout", "86400"),  # about 116 days: the worker pool's wait overflowed
+    ("timeout = nan", "timeout", "86400"),
+    ("growth = 1" + "0" * 400, "growth", "1e+06"),
+    ("growth_floor = 1", "growth_floor", "< 1"),
+    ("seed = 9223372036854775808", "seed", "2**63"),
+    ("workers = 100000", "workers", "256"),
+    ("[tolerances]\ny = [1" + "0" * 400 + ", 0]", "tolerances.y.atol", "1e+100"),
+    ("[tolerances]\ndx = { atol = 0, rtol = inf }", "tolerances.dx.rtol", "1e+100"),
+])
+def test_huge_numbers_are_refused_with_the_limit_in_the_message(tmp_path, text, key, limit):
+    # Before: these passed validation and raised OverflowError later (float() of a 400-digit integer,
+    # or a timeout beyond what poll(2) can wait, POSIX.1-2017 poll(): a C int of milliseconds).
+    p = write(tmp_path / "refnorm.toml", text + "\n")
+    with pytest.raises(ProfileError) as e:
+        load_profile(p)
+    msg = str(e.value)
+    assert str(p) in msg and f"{key}:" in msg and limit in msg, msg
+
+
+def test_the_profile_and_the_command_line_share_their_limits(tmp_path, capsys):
+    # The same value is refused by both routes, and the same boundary value accepted by both.
+    for key, value in (("seed", -1), ("timeout", 86401), ("workers", 257)):
+        with pytest.raises(ProfileError, match=key):
+            parse_profile({key: value})
+        assert main(["check", spec("fp32"), f"--{key}", str(value)]) == 2
+    assert parse_profile({"seed": 2 ** 63 - 1, "timeout": 86400, "workers": 256}).timeout == 86400.0
+    capsys.readouterr()
+
+
+def test_a_profile_that_is_not_utf8_is_exit_2_naming_the_file(tmp_path, capsys):
+    p = tmp_path / "refnorm.toml"
+    p.write_bytes(b"tier = 'sm\xe9oke'\n")  # Latin-1 e-acute, not UTF-8
+    assert main(["check", spec("fp32"), "--quiet", "--profile", str(p)]) == 2
+    out, err = capsys.readouterr()
+    assert str(p) in err and "UTF-8" in err and "Traceback" not in err and out == ""
+
+
+@pytest.mark.parametrize("raw", [b"[project\nname = 'x'\n", b"[project]\nname = '\xff'\n"])
+def test_gate_ignores_an_unreadable_pyproject_with_a_note(tmp_path, monkeypatch, capsys, raw):
+    # Before: `refnorm gate --kernel ...` crashed on a pyproject.toml of the folder that is not TOML or not
+    # UTF-8, even with no [tool.refnorm] in it. Now it is "no profile here", with a note.
+    (tmp_path / "pyproject.toml").write_bytes(raw)
+    monkeypatch.chdir(tmp_path)
+    notes: list[str] = []
+    assert find_profile(tmp_path, notes) is None and "not used as a profile" in notes[0]
+    one = "layer_norm/float32/trailing/4x64/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous"
+    prof = write(tmp_path / "one.toml", "tier = 'smoke'\n")
+    assert main(["check", spec("fp32"), "--case", one, "--quiet", "--profile", str(prof)]) == 0
+    assert main(["gate", "--kernel", spec("fp32"), "--tier", "smoke", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "note:" in out and "pyproject.toml" in out and "gate: PASS" in out
+    assert main(["gate", "--quiet"]) == 2  # no kernel and no usable profile: a usage error that says why
+    err = capsys.readouterr().err
+    assert "no profile" in err and "pyproject.toml" in err
+
+
+def test_an_unreadable_refnorm_toml_asked_for_by_its_place_is_exit_2(tmp_path, monkeypatch, capsys):
+    write(tmp_path / "refnorm.toml", "tier = \n")
+    monkeypatch.chdir(tmp_path)
+    assert main(["gate", "--kernel", spec("fp32"), "--quiet"]) == 2
+    assert "refnorm.toml: not valid TOML" in capsys.readouterr().err
+
+
+def test_gate_baseline_dir_with_a_name_over_255_bytes_is_exit_2(tmp_path, capsys):
+    # Before: OSError (File name too long) from Path.is_file.
+    assert main(["gate", "--kernel", spec("fp32"), "--quiet", "--baseline-dir", str(tmp_path / ("b" * 300))]) == 2
+    out, err = capsys.readouterr()
+    assert "--baseline-dir" in err and "255" in err and out == ""
+
+
+def test_gate_baseline_dir_that_is_a_file_is_exit_2_and_a_missing_one_a_warning(tmp_path, capsys):
+    f = write(tmp_path / "f", "x")
+    assert main(["gate", "--kernel", spec("fp32"), "--quiet", "--baseline-dir", str(f)]) == 2
+    assert "expected a folder" in capsys.readouterr().err
+    assert main(["gate", "--kernel", spec("fp32"), "--tier", "smoke", "--quiet", "--baseline-dir",
+                 str(tmp_path / "none")]) == 0  # a first run, before any baseline was committed
+    assert "does not exist; growth not checked" in capsys.readouterr().out
+
+
+def test_gate_json_dir_fits_long_kernel_names(tmp_path, capsys):
+    # Before: a kernel name of 300 characters made NAME.json longer than NAME_MAX (255 bytes) and the
+    # write failed after the run. Now the name is cut, with a digest of the whole name, and stays unique.
+    k = write(tmp_path / "long_kernels.py", f"""
+import dataclasses, sys
+sys.path.insert(0, {str(KERNELS.parent)!r})
+import gate_kernels
+a = dataclasses.replace(gate_kernels.fp32, name="a" * 300 + "-one")
+b = dataclasses.replace(gate_kernels.fp32, name="a" * 300 + "-two")
+""")
+    out = tmp_path / "out"
+    assert main(["gate", "--kernel", f"{k}:a", "--kernel", f"{k}:b", "--tier", "smoke", "--quiet",
+                 "--json-dir", str(out)]) == 0
+    names = sorted(p.name for p in out.iterdir())
+    assert len(names) == 2 and all(len(n.encode()) <= 255 and n.endswith(".json") for n in names)
+    assert {json.loads((out / n).read_text())["kernel"]["name"][-4:] for n in names} == {"-one", "-two"}
+    capsys.readouterr()
+
+
+def test_profile_does_not_import_plan():
+    # The import cycle plan <-> profile is gone: profile.py imports nothing from plan (checked on the source).
+    import ast
+
+    import conformance.gate.profile as prof_mod
+
+    tree = ast.parse(Path(prof_mod.__file__).read_text())
+    imported = {n.module for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) and n.module}
+    assert "plan" not in imported and not any(m.endswith(".plan") for m in imported)
+
+
+def test_empty_paths_are_usage_errors_not_ignored(tmp_path, capsys):
+    # Before: an empty --baseline or gate --profile was taken as "not given" without a word.
+    assert main(["check", spec("fp32"), "--quiet", "--baseline", ""]) == 2
+    assert "baseline" in capsys.readouterr().err
+    assert main(["gate", "--kernel", spec("fp32"), "--quiet", "--profile", ""]) == 2
+    assert "profile" in capsys.readouterr().err
+
+
+def test_a_file_name_stdout_cannot_encode_is_escaped_not_a_crash(tmp_path, monkeypatch):
+    # A kernel file whose name has a byte that is not UTF-8: os.fsdecode keeps it as a surrogate
+    # (PEP 383), which a strict UTF-8 stdout cannot encode. The gate prints the spec; it must not crash.
+    import io
+
+    name = os.fsdecode(b"k\xff.py")
+    k = tmp_path / name
+    k.write_text(f"import sys\nsys.path.insert(0, {str(KERNELS.parent)!r})\nfrom gate_kernels import fp32\n")
+    out = io.TextIOWrapper(io.BytesIO(), encoding="utf-8", errors="strict", write_through=True)
+    monkeypatch.setattr(sys, "stdout", out)
+    assert main(["gate", "--kernel", f"{k}:fp32", "--tier", "smoke", "--quiet"]) == 0
+    assert b"k\\udcff.py" in out.buffer.getvalue() and b"gate: PASS" in out.buffer.getvalue()

@@ -180,3 +180,11 @@ def test_a_bad_kernel_spec_is_a_usage_error(tmp_path):
     r = run_pytest(tmp_path, "--refnorm-kernel", f"{KERNELS}:no_such_kernel")
     assert r.returncode == 4  # pytest's ExitCode.USAGE_ERROR
     assert "no_such_kernel" in r.stderr
+
+
+def test_numbers_outside_their_limits_are_usage_errors(tmp_path):
+    # The plugin shares the limits of `refnorm check` and the profile (conformance.options): before,
+    # --refnorm-timeout nan was accepted and disabled the timeout of every item.
+    r = run_pytest(tmp_path, "--refnorm-kernel", spec("fp32"), "--refnorm-timeout", "nan")
+    assert r.returncode == 4  # pytest's ExitCode.USAGE_ERROR
+    assert "--refnorm-timeout" in r.stderr and "86400" in r.stderr, r.stderr

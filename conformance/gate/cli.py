@@ -13,35 +13,19 @@ from __future__ import annotations
 import argparse
 import re
 import shlex
+import sys
 from pathlib import Path
 from typing import Any, Sequence
 
+from ..destinations import DestinationError, file_target, fit_name, folder_target, input_folder
+from ..options import number_type
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, ProfileError, find_profile, load_profile
 
-__all__ = ["add_check_arguments", "add_commands", "amend", "emit"]
+__all__ = ["add_check_arguments", "add_commands", "prepare", "amend", "emit", "verdict_lines", "exit_code"]
 
-#: Options of `refnorm check` whose value a profile may supply when the command line does not.
+#: Options of `refnorm check` whose value a profile may supply when the command line does not
+#: (check leaves them None when they are not given; conformance.options.DEFAULTS applies after).
 _PROFILE_OPTIONS = ("tier", "seed", "workers", "timeout")
-
-
-def _factor(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a factor > 1 (e.g. 2), received {text!r}")
-    if not v > 1.0:
-        raise argparse.ArgumentTypeError(f"expected a factor > 1 (e.g. 2), received {text!r}")
-    return v
-
-
-def _floor(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a fraction of the bound >= 0 (e.g. 0.01), received {text!r}")
-    if not v >= 0.0:
-        raise argparse.ArgumentTypeError(f"expected a fraction of the bound >= 0 (e.g. 0.01), received {text!r}")
-    return v
 
 
 def _gate_arguments(p: argparse.ArgumentParser, *, per_kernel_baseline: bool = True) -> None:
@@ -49,11 +33,12 @@ def _gate_arguments(p: argparse.ArgumentParser, *, per_kernel_baseline: bool = T
         p.add_argument("--baseline", metavar="OLD.json",
                        help="fail a passed output whose budget used grew more than --growth times over this "
                             "earlier results file (same case id and output)")
-    p.add_argument("--growth", type=_factor, metavar="F",
-                   help=f"allowed growth factor over the baseline (default: the profile's, else {DEFAULT_GROWTH:g})")
-    p.add_argument("--growth-floor", type=_floor, metavar="B",
-                   help="budgets below B count as B when measuring growth (default: the profile's, else "
-                        f"{DEFAULT_GROWTH_FLOOR:g})")
+    p.add_argument("--growth", type=number_type("growth"), metavar="F",
+                   help="allowed growth factor over the baseline, > 1 and at most 1e6 (default: the profile's, "
+                        f"else {DEFAULT_GROWTH:g})")
+    p.add_argument("--growth-floor", type=number_type("growth_floor"), metavar="B",
+                   help="budgets below B count as B when measuring growth, 0 <= B < 1 (default: the profile's, "
+                        f"else {DEFAULT_GROWTH_FLOOR:g})")
     p.add_argument("--junit", metavar="PATH", help="write JUnit XML here")
 
 
@@ -62,29 +47,6 @@ def add_check_arguments(parser: argparse.ArgumentParser) -> None:
                         help="apply a gate profile (refnorm.toml, or pyproject.toml with [tool.refnorm]): its "
                              "tier, dtypes, seed, workers, timeout, tolerances and waivers; options given here win")
     _gate_arguments(parser)
-    parser.set_defaults(func=_check, _refnorm_check_parser=parser)
-
-
-_UNSET = object()
-
-
-def _given(args: argparse.Namespace, argv: Sequence[str]) -> set[str]:
-    """Which of _PROFILE_OPTIONS the command line set (a profile fills only the others).
-
-    argparse cannot tell a default from an explicit value, so the check command's own
-    arguments are parsed once more with a marker as the default of those options.
-    """
-    sub = getattr(args, "_refnorm_check_parser", None)
-    if sub is None:
-        return set(_PROFILE_OPTIONS)
-    rest = list(argv[1:]) if argv and argv[0] == "check" else list(argv)
-    saved = {k: sub.get_default(k) for k in _PROFILE_OPTIONS}
-    sub.set_defaults(**{k: _UNSET for k in _PROFILE_OPTIONS})
-    try:
-        ns, _ = sub.parse_known_args(rest)
-    finally:
-        sub.set_defaults(**saved)
-    return {k for k in _PROFILE_OPTIONS if getattr(ns, k, _UNSET) is not _UNSET}
 
 
 def _usage(msg: str) -> Exception:
@@ -102,34 +64,42 @@ def _load_profile(path: str | None):
         raise _usage(str(e)) from None
 
 
-def _check(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    from .. import cli
+def _destination(check, path: str, option: str) -> Path:
+    try:
+        return check(path, option)
+    except DestinationError as e:
+        raise _usage(str(e)) from None
+
+
+def prepare(args: argparse.Namespace) -> None:
+    """Before `refnorm check` loads the kernel: the --junit destination, the profile (whose plan
+    fills the options the command line left None, and loads the kernel) and the baseline."""
     from .plan import PlanError, plan_runs
 
+    if args.junit is not None:
+        args.junit = _destination(file_target, args.junit, "--junit")
     prof = _load_profile(args.profile)
     if prof is not None:
-        spec = args.spec if (":" in args.spec or not args.op) else f"{args.spec}:{args.op}"
-        given = {k: getattr(args, k) for k in _given(args, argv)}
+        from ..cli import check_spec
+
+        spec = check_spec(args.spec, args.op)
+        given = {k: getattr(args, k) for k in _PROFILE_OPTIONS if getattr(args, k) is not None}
         try:
             plan = plan_runs(prof, specs=[spec], dtypes=args.dtype, overrides=dict(args.tolerance),
                              case_ids=args.case, growth=args.growth, growth_floor=args.growth_floor, **given)[0]
         except PlanError as e:
             raise _usage(str(e)) from None
         args.tier, args.seed, args.workers, args.timeout = plan.tier, plan.seed, plan.workers, plan.timeout
-        if args.dtype or (prof.entry_for(spec) and prof.entry_for(spec).dtypes) or prof.dtypes:
+        entry = prof.entry_for(spec)
+        if args.dtype or (entry and entry.dtypes) or prof.dtypes:
             args.dtype = list(plan.dtypes)
         args.tolerance = list(plan.overrides.items())
+        args.loaded_kernel = (plan.kernel, spec)
         args._refnorm_plan = plan
-    plan = getattr(args, "_refnorm_plan", None)
-    if args.baseline is None and plan is not None and plan.baseline is not None:
-        args.baseline = str(plan.baseline)
-    if args.baseline:  # read it before the run: a bad path must not cost a run
+        if args.baseline is None and plan.baseline is not None:
+            args.baseline = str(plan.baseline)
+    if args.baseline is not None:  # read it before the run: a bad path must not cost a run
         args._refnorm_baseline_doc = _load_doc(args.baseline, "baseline")
-    code = cli.cmd_check(args, argv)
-    gate = getattr(args, "_refnorm_gate", None)
-    if gate is None or code not in (cli.EXIT_OK, cli.EXIT_FAIL):
-        return code
-    return cli.EXIT_OK if gate["verdict"] == "pass" else cli.EXIT_FAIL
 
 
 def _load_doc(path: str, what: str) -> dict[str, Any]:
@@ -154,30 +124,37 @@ def amend(args: argparse.Namespace, doc: dict[str, Any]) -> dict[str, Any]:
     growth = args.growth or (plan.growth if plan else None)
     floor = args.growth_floor if args.growth_floor is not None else (plan.growth_floor if plan else None)
     baseline = getattr(args, "_refnorm_baseline_doc", None)
-    if baseline is None and baseline_path:
-        baseline = _load_doc(baseline_path, "baseline")
     doc, _ = apply_gate(doc, waivers=plan.waivers if plan else (), baseline=baseline,
                         baseline_path=baseline_path, growth=growth, growth_floor=floor,
                         profile=args.profile)
-    args._refnorm_gate = doc["gate"]
     return doc
 
 
-def emit(args: argparse.Namespace, doc: dict[str, Any]) -> None:
-    """Print the gate's lines and write JUnit XML."""
-    if getattr(args, "command", None) != "check":
-        return
+def emit(args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
+    """Write JUnit XML (--junit); return the line naming it."""
+    if getattr(args, "command", None) != "check" or not getattr(args, "junit", None):
+        return []
+    from .junit import write_junit
+
+    return [f"junit: {write_junit(args.junit, [doc])}"]
+
+
+def verdict_lines(args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
+    """The gate's decision, waivers and baseline, after check's verdict."""
     from .decide import gate_lines
 
     lines = gate_lines(doc)
-    if lines:
-        print()
-        for line in lines:
-            print(line)
-    if getattr(args, "junit", None):
-        from .junit import write_junit
+    return [""] + lines if lines else []
 
-        print(f"junit: {write_junit(args.junit, [doc])}")
+
+def exit_code(args: argparse.Namespace, doc: dict[str, Any], code: int) -> int:
+    """With --profile or --baseline, check exits by the gate's verdict (0 pass, 1 fail)."""
+    from .. import cli
+
+    gate = doc.get("gate")
+    if gate is None or code not in (cli.EXIT_OK, cli.EXIT_FAIL):
+        return code
+    return cli.EXIT_OK if gate["verdict"] == "pass" else cli.EXIT_FAIL
 
 
 # ---------------------------------------------------------------- refnorm gate
@@ -194,9 +171,12 @@ def add_commands(subparsers) -> None:
                    help="check this kernel instead of the profile's list (repeatable)")
     g.add_argument("--tier", choices=TIERS, help="catalog tier (default: the profile's, else standard)")
     g.add_argument("--dtype", nargs="+", choices=_dtypes.FORMATS, help="storage dtypes (default: the profile's)")
-    g.add_argument("--seed", type=int, help="seed of the case data (default: the profile's, else 0)")
-    g.add_argument("--workers", type=int, help="worker processes (default: the profile's, else 1)")
-    g.add_argument("--timeout", type=float, help="per-case timeout in seconds (default: the profile's, else 120)")
+    g.add_argument("--seed", type=number_type("seed"),
+                   help="seed of the case data, 0 <= N < 2**63 (default: the profile's, else 0)")
+    g.add_argument("--workers", type=number_type("workers"),
+                   help="worker processes, 1 to 256 (default: the profile's, else 1)")
+    g.add_argument("--timeout", type=number_type("timeout"),
+                   help="per-case timeout in seconds, > 0 and at most 86400 (default: the profile's, else 120)")
     g.add_argument("--json-dir", metavar="DIR", help="write each kernel's results document here as NAME.json")
     g.add_argument("--baseline-dir", metavar="DIR",
                    help="earlier results documents named as --json-dir writes them (NAME.json): the baseline of "
@@ -211,16 +191,22 @@ def add_commands(subparsers) -> None:
                                           "and removed. Exit 1 if anything got worse.")
     d.add_argument("old", metavar="OLD.json")
     d.add_argument("new", metavar="NEW.json")
-    d.add_argument("--growth", type=_factor, default=DEFAULT_GROWTH, metavar="F",
+    d.add_argument("--growth", type=number_type("growth"), default=DEFAULT_GROWTH, metavar="F",
                    help=f"factor that counts as grown or shrunk (default {DEFAULT_GROWTH:g})")
-    d.add_argument("--growth-floor", type=_floor, default=DEFAULT_GROWTH_FLOOR, metavar="B",
+    d.add_argument("--growth-floor", type=number_type("growth_floor"), default=DEFAULT_GROWTH_FLOOR, metavar="B",
                    help=f"budgets below B count as B (default {DEFAULT_GROWTH_FLOOR:g})")
     d.set_defaults(func=cmd_diff)
 
 
+#: Room left in a file name for the "-N" of a repeated name and the ".json" suffix.
+_NAME_ROOM = 230
+
+
 def result_name(kernel_name: str, taken: set[str]) -> str:
-    """A file name for a kernel's results: its name with anything but [A-Za-z0-9._-] made '_'."""
-    base = re.sub(r"[^A-Za-z0-9._-]+", "_", kernel_name).strip("._") or "kernel"
+    """A file name (without .json) for a kernel's results: its name with anything but [A-Za-z0-9._-]
+    made '_', cut to fit a file name (a cut name ends in a digest of the whole), '-2', '-3', ...
+    added when another kernel has the name already."""
+    base = fit_name(re.sub(r"[^A-Za-z0-9._-]+", "_", kernel_name).strip("._") or "kernel", "", _NAME_ROOM)
     name, i = base, 2
     while name in taken:
         name, i = f"{base}-{i}", i + 1
@@ -233,15 +219,26 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     from ..results import write_json_atomic
     from ..run import run_check
     from ..summary import summary_table, verdict_lines
-    from .decide import apply_gate, gate_lines
+    from .decide import GATE_CAUTION, apply_gate, gate_lines
     from .plan import PlanError, plan_runs
     from .waivers import waiver_summary
 
-    path = args.profile or find_profile(Path.cwd())
+    # Destinations first: a path that cannot be written must not cost a run (nor a kernel load).
+    json_dir = _destination(folder_target, args.json_dir, "--json-dir") if args.json_dir is not None else None
+    junit = _destination(file_target, args.junit, "--junit") if args.junit is not None else None
+    baseline_dir = None
+    if args.baseline_dir is not None:
+        baseline_dir = _destination(input_folder, args.baseline_dir, "--baseline-dir")
+        if baseline_dir is None:
+            print(f"warning: --baseline-dir {args.baseline_dir} does not exist; growth not checked")
+    notes: list[str] = []
+    path = args.profile if args.profile is not None else find_profile(Path.cwd(), notes)
     if path is None and not args.kernel:
         raise _usage("no profile: give --profile PATH, or put refnorm.toml (or [tool.refnorm] in pyproject.toml) "
-                     "in this folder, or name kernels with --kernel")
-    prof = _load_profile(str(path)) if path else None
+                     "in this folder, or name kernels with --kernel" + "".join(f" (note: {n})" for n in notes))
+    for n in notes:
+        print(f"note: {n}")
+    prof = _load_profile(str(path)) if path is not None else None
     try:
         plans = plan_runs(prof, specs=args.kernel, tier=args.tier, dtypes=args.dtype, seed=args.seed,
                           workers=args.workers, timeout=args.timeout, growth=args.growth,
@@ -251,16 +248,19 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     command = "refnorm " + shlex.join(argv)
     taken: set[str] = set()
     names = [result_name(p.kernel.name, taken) for p in plans]
+    if json_dir is not None:
+        for name in names:
+            _destination(file_target, json_dir / f"{name}.json", "--json-dir")
     baselines = []  # read them all before the first run: a bad file must not cost a run
     for plan, name in zip(plans, names):
         bl_path = plan.baseline
-        if bl_path is None and args.baseline_dir:
-            cand = Path(args.baseline_dir) / f"{name}.json"
+        if bl_path is None and baseline_dir is not None:
+            cand = baseline_dir / f"{name}.json"
             bl_path = cand if cand.is_file() else None
             if bl_path is None:
                 print(f"warning: no baseline {cand} for kernel {plan.kernel.name!r}; growth not checked")
         baselines.append((bl_path, _load_doc(str(bl_path), "baseline") if bl_path else None))
-    docs, uses = [], []
+    docs, uses, unwritten = [], [], []
     interrupted = False
     for plan, name, (bl_path, baseline) in zip(plans, names, baselines):
         print(f"== {plan.kernel.name} ({plan.spec}): {plan.kernel.op}, {', '.join(plan.dtypes)}, {plan.tier} tier, "
@@ -271,16 +271,30 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
                             growth_floor=plan.growth_floor, profile=str(path) if path else None)
         uses += u
         docs.append(doc)
+        written = None
+        if json_dir is not None:  # the file first, then the lines
+            try:
+                written = write_json_atomic(json_dir / f"{name}.json", doc)
+            except OSError as e:
+                unwritten.append(f"--json-dir {json_dir / f'{name}.json'}: {e.strerror or e}")
         print(summary_table(doc))
         print()
         for line in verdict_lines(doc)[:1] + gate_lines(doc, stale=False)[:-1]:
             print(line)
-        if args.json_dir:
-            print(f"results: {write_json_atomic(Path(args.json_dir) / f'{name}.json', doc)}")
+        if written is not None:
+            print(f"results: {written}")
         print()
         if not doc["complete"]:
             interrupted = True
             break
+    junit_line = None
+    if junit is not None:
+        from .junit import write_junit
+
+        try:
+            junit_line = f"junit: {write_junit(junit, docs)}"
+        except OSError as e:
+            unwritten.append(f"--junit {junit}: {e.strerror or e}")
     waivers = prof.waivers if prof else ()
     ws = waiver_summary(waivers, uses)
     for w in ws["stale"]:
@@ -289,19 +303,19 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     for w in ws["unmatched"]:
         print(f"warning: waiver #{w['index']} (case {w['case']!r}) matches no case of any kernel checked: "
               "remove it or fix its pattern")
-    if args.junit:
-        from .junit import write_junit
-
-        print(f"junit: {write_junit(args.junit, docs)}")
+    if junit_line:
+        print(junit_line)
     failed = [d["kernel"]["name"] for d in docs if d["gate"]["verdict"] != "pass"]
     verdict = "FAIL" if failed or interrupted else "PASS"
     print(f"gate: {verdict}: {len(docs) - len(failed)} of {len(plans)} kernel(s) pass"
           + (f"; failing: {', '.join(failed)}" if failed else "") + (" (interrupted)" if interrupted else ""))
-    from .decide import GATE_CAUTION
-
     print("note: " + GATE_CAUTION)
+    for line in unwritten:
+        print(f"refnorm: error: could not write {line}", file=sys.stderr)
     if interrupted:
         return cli.EXIT_INTERRUPTED
+    if unwritten:
+        return cli.EXIT_USAGE
     return cli.EXIT_FAIL if failed else cli.EXIT_OK
 
 

@@ -107,10 +107,9 @@ def junit_tree(docs: Iterable[Mapping[str, Any]]) -> ET.ElementTree:
 
 
 def write_junit(path: str | os.PathLike, docs: Iterable[Mapping[str, Any]]) -> Path:
-    """Write the JUnit XML of ``docs`` to ``path`` (via a temporary file renamed into place)."""
-    p = Path(path)
-    p.parent.mkdir(parents=True, exist_ok=True)
-    tmp = p.with_name(f".{p.name}.tmp")
-    junit_tree(docs).write(tmp, encoding="utf-8", xml_declaration=True)
-    os.replace(tmp, p)
-    return p
+    """Write the JUnit XML of ``docs`` to ``path`` (via a temporary file beside it, renamed into place;
+    conformance.destinations.file_target checks the path before a run)."""
+    from ..destinations import write_atomic
+
+    tree = junit_tree(docs)
+    return write_atomic(path, lambda f: tree.write(f, encoding="utf-8", xml_declaration=True), binary=True)

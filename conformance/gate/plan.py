@@ -14,11 +14,10 @@ from pathlib import Path
 from typing import Mapping, Sequence
 
 from ..kernel import Kernel, KernelError, load_kernel
-from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, Profile, Waiver
+from ..options import DEFAULTS, OptionError, check_number
+from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, Profile, Waiver, loadable_spec
 
 __all__ = ["Plan", "PlanError", "plan_runs", "loadable_spec", "DEFAULTS"]
-
-DEFAULTS = {"tier": "standard", "seed": 0, "workers": 1, "timeout": 120.0}
 
 
 class PlanError(ValueError):
@@ -65,18 +64,23 @@ class Plan:
             raise PlanError(str(e.args[0]) if e.args else str(e)) from None
 
 
-def loadable_spec(spec: str) -> str:
-    target, sep, attr = spec.rpartition(":")
-    if sep and (target.endswith(".py") or "/" in target or "\\" in target):
-        return f"{Path(target).resolve()}:{attr}"
-    return spec
-
-
 def _load(spec: str) -> Kernel:
     try:
         return load_kernel(spec)
     except KernelError as e:
         raise PlanError(str(e)) from None
+    except (OSError, ValueError) as e:  # a path the file system refuses (too long, a NUL character)
+        raise PlanError(f"kernel spec {spec!r}: {e}") from None
+
+
+def _checked(kind: str, value, label: str):
+    """A number from a caller (the command line, the plugin, a profile) within options.LIMITS."""
+    if value is None:
+        return None
+    try:
+        return check_number(kind, value)
+    except OptionError as e:
+        raise PlanError(f"{label}: {e}") from None
 
 
 def plan_runs(profile: Profile | None, *, specs: Sequence[str] = (), tier: str | None = None,
@@ -94,10 +98,12 @@ def plan_runs(profile: Profile | None, *, specs: Sequence[str] = (), tier: str |
     if not chosen:
         where = f" in {prof.path}" if prof.path else ""
         raise PlanError(f"no kernel to check: give a kernel spec, or list kernels{where} (key 'kernels')")
-    if growth is not None and not growth > 1.0:
-        raise PlanError(f"growth is {growth!r}, expected a factor > 1")
-    if growth_floor is not None and not growth_floor >= 0.0:
-        raise PlanError(f"growth floor is {growth_floor!r}, expected a number >= 0")
+    seed, workers, timeout = (_checked("seed", seed, "seed"), _checked("workers", workers, "workers"),
+                              _checked("timeout", timeout, "timeout"))
+    growth = _checked("growth", growth, "growth")
+    growth_floor = _checked("growth_floor", growth_floor, "growth floor")
+    dtypes = tuple(dict.fromkeys(dtypes)) if dtypes else None
+    case_ids = tuple(dict.fromkeys(case_ids))  # a case named twice runs once
     plans = []
     for spec in chosen:
         kernel = _load(spec)
@@ -123,10 +129,6 @@ def plan_runs(profile: Profile | None, *, specs: Sequence[str] = (), tier: str |
         t = prof.timeout if timeout is None else timeout
         w = DEFAULTS["workers"] if w is None else w
         t = DEFAULTS["timeout"] if t is None else t
-        if w < 1:
-            raise PlanError(f"workers is {w}, expected an integer >= 1")
-        if not t > 0:
-            raise PlanError(f"timeout is {t}, expected a positive number of seconds")
         bl = Path(baseline) if baseline is not None else (entry.baseline if entry else None)
         plans.append(Plan(
             spec=spec, kernel=kernel, dtypes=dts,

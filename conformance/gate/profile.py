@@ -19,8 +19,9 @@ from typing import Any, Mapping, NoReturn
 from .. import dtypes as _dtypes
 from ..cases.model import TIERS
 from ..kernel import OPS
+from ..options import OUTPUT_NAMES, OptionError, check_number, shown
 
-__all__ = ["Profile", "KernelEntry", "Waiver", "ProfileError", "load_profile", "find_profile",
+__all__ = ["Profile", "KernelEntry", "Waiver", "ProfileError", "load_profile", "find_profile", "loadable_spec",
            "PROFILE_FILES", "DEFAULT_GROWTH", "DEFAULT_GROWTH_FLOOR"]
 
 #: Searched in this order by find_profile.
@@ -31,8 +32,6 @@ DEFAULT_GROWTH = 2.0
 #: the rounding noise of a near-exact kernel (a few thousandths of its bound) cannot count as growth.
 DEFAULT_GROWTH_FLOOR = 0.01
 
-OUTPUT_NAMES = ("y", "mean", "rstd", "var", "var_unbiased", "std", "running_mean", "running_var",
-                "dx", "dweight", "dbias")
 
 
 class ProfileError(ValueError):
@@ -108,13 +107,27 @@ class Profile:
 
     def entry_for(self, spec: str) -> KernelEntry | None:
         """The kernel entry of this spec (file paths compared once made absolute)."""
-        from .plan import loadable_spec
-
         want = loadable_spec(spec)
         for k in self.kernels:
             if loadable_spec(k.spec) == want:
                 return k
         return None
+
+
+def _is_path_target(target: str) -> bool:
+    """A spec's target is a file path (not a module) when it ends in .py or has a path separator."""
+    return target.endswith(".py") or "/" in target or "\\" in target
+
+
+def loadable_spec(spec: str) -> str:
+    """The spec with a file path made absolute (for comparing specs, and for worker processes)."""
+    target, sep, attr = spec.rpartition(":")
+    if sep and _is_path_target(target):
+        try:
+            return f"{Path(target).resolve()}:{attr}"
+        except (OSError, ValueError, RuntimeError):  # a NUL, a name too long, a symlink loop: kept as given
+            return spec
+    return spec
 
 
 def _toml_loads(text: str, where: str) -> dict[str, Any]:
@@ -130,17 +143,53 @@ def _toml_loads(text: str, where: str) -> dict[str, Any]:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise ProfileError(f"{where}: not valid TOML: {e}") from None
+    except RecursionError:
+        raise ProfileError(f"{where}: not readable as TOML: arrays or tables nested too deeply") from None
+    except ValueError as e:  # an integer beyond Python's limit of 4300 digits for int(str)
+        raise ProfileError(f"{where}: not readable as TOML: {e}") from None
 
 
-def find_profile(start: str | Path = ".") -> Path | None:
-    """refnorm.toml in ``start``, else a pyproject.toml there with a [tool.refnorm] table, else None."""
+def _read_toml(p: Path) -> dict[str, Any]:
+    """The parsed TOML of a file; any reason it cannot be read (a folder, not UTF-8 (TOML v1.0.0:
+    "A TOML file must be a valid UTF-8 encoded Unicode document"), not TOML, nested too deeply)
+    is a ProfileError naming the file."""
+    try:
+        raw = p.read_bytes()
+    except OSError as e:
+        raise ProfileError(f"profile {p}: cannot be read: {e.strerror or e}") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        raise ProfileError(f"{p}: not valid UTF-8 (byte {e.start} is {raw[e.start]:#04x}); TOML files are "
+                           "UTF-8") from None
+    return _toml_loads(text, str(p))
+
+
+def _exists(p: Path) -> bool:
+    try:
+        return p.is_file()
+    except (OSError, ValueError):  # a name too long, a NUL: no such file
+        return False
+
+
+def find_profile(start: str | Path = ".", notes: list[str] | None = None) -> Path | None:
+    """refnorm.toml in ``start``, else a pyproject.toml there with a [tool.refnorm] table, else None.
+
+    A pyproject.toml that cannot be read as TOML is no profile (it may belong to something else);
+    why is appended to ``notes``. A refnorm.toml is returned as it is (loading it says what is wrong).
+    """
     d = Path(start)
     rt = d / "refnorm.toml"
-    if rt.is_file():
+    if _exists(rt):
         return rt
     pp = d / "pyproject.toml"
-    if pp.is_file():
-        data = _toml_loads(pp.read_text(encoding="utf-8"), str(pp))
+    if _exists(pp):
+        try:
+            data = _read_toml(pp)
+        except ProfileError as e:
+            if notes is not None:
+                notes.append(f"{e}; not used as a profile")
+            return None
         if isinstance(data.get("tool"), dict) and "refnorm" in data["tool"]:
             return pp
     return None
@@ -149,9 +198,15 @@ def find_profile(start: str | Path = ".") -> Path | None:
 def load_profile(path: str | Path) -> Profile:
     """Read and validate a profile file (pyproject.toml: its [tool.refnorm] table; else the whole file)."""
     p = Path(path)
-    if not p.is_file():
-        raise ProfileError(f"profile {p}: no such file")
-    data = _toml_loads(p.read_text(encoding="utf-8"), str(p))
+    if not _exists(p):
+        name = str(p) if len(str(p)) <= 300 else shown(str(p))
+        try:
+            folder = p.is_dir()
+        except (OSError, ValueError):
+            folder = False
+        raise ProfileError(f"profile {name}: " + ("is a folder, expected a profile file (refnorm.toml or "
+                                                   "pyproject.toml)" if folder else "no such file"))
+    data = _read_toml(p)
     if p.name == "pyproject.toml":
         tool = data.get("tool")
         if not isinstance(tool, dict) or "refnorm" not in tool:
@@ -176,7 +231,7 @@ class _Ctx:
         self.where = where
 
     def fail(self, key: str, expected: str, got: Any) -> NoReturn:
-        raise ProfileError(f"{self.where}: {key}: expected {expected}, received {got!r}")
+        raise ProfileError(f"{self.where}: {key}: expected {expected}, received {shown(got)}")
 
     def unknown(self, table: Mapping[str, Any], allowed: tuple[str, ...], prefix: str) -> None:
         bad = [k for k in table if k not in allowed]
@@ -193,16 +248,12 @@ class _Ctx:
                 self.fail(key, f"names from {', '.join(allowed)}", x)
         return tuple(dict.fromkeys(v))
 
-    def number(self, key: str, v: Any, *, integer: bool = False, minimum: float | None = None,
-               exclusive: bool = False) -> Any:
-        ok = isinstance(v, int) if integer else isinstance(v, (int, float))
-        if isinstance(v, bool) or not ok:
-            self.fail(key, "an integer" if integer else "a number", v)
-        if v != v or v in (float("inf"), float("-inf")):
-            self.fail(key, "a finite number", v)
-        if minimum is not None and (v <= minimum if exclusive else v < minimum):
-            self.fail(key, f"a number {'>' if exclusive else '>='} {minimum:g}", v)
-        return v
+    def number(self, key: str, v: Any, kind: str) -> Any:
+        """A number within conformance.options.LIMITS[kind] (the command line's limits)."""
+        try:
+            return check_number(kind, v)
+        except OptionError as e:
+            raise ProfileError(f"{self.where}: {key}: {e}") from None
 
 
 def _resolve_spec(spec: str, base: Path, ops: tuple[str, ...] | None, ctx: _Ctx, key: str) -> list[str]:
@@ -214,7 +265,7 @@ def _resolve_spec(spec: str, base: Path, ops: tuple[str, ...] | None, ctx: _Ctx,
             ctx.fail(key, "module:attr or path/file.py:attr (a module alone needs the ops key)", spec)
         return [f"{spec}:{op}" for op in ops]
     target, _, attr = spec.rpartition(":")
-    if target.endswith(".py") or "/" in target or "\\" in target:
+    if _is_path_target(target):
         t = Path(target)
         if not t.is_absolute():
             t = base / t
@@ -232,9 +283,7 @@ def _tolerance(ctx: _Ctx, key: str, v: Any) -> tuple[float, float]:
         a, r = v
     else:
         ctx.fail(key, "{ atol = A, rtol = R } or [A, R]", v)
-    a = ctx.number(f"{key}.atol", a, minimum=0.0)
-    r = ctx.number(f"{key}.rtol", r, minimum=0.0)
-    return float(a), float(r)
+    return ctx.number(f"{key}.atol", a, "atol"), ctx.number(f"{key}.rtol", r, "rtol")
 
 
 def _tolerances(ctx: _Ctx, v: Any) -> dict[str, dict[str, tuple[float, float]]]:
@@ -318,15 +367,15 @@ def parse_profile(table: Mapping[str, Any], *, where: str = "profile", base: Pat
             ctx.fail("tier", f"one of {', '.join(TIERS)}", table["tier"])
         kw["tier"] = table["tier"]
     if "seed" in table:
-        kw["seed"] = ctx.number("seed", table["seed"], integer=True, minimum=0)
+        kw["seed"] = ctx.number("seed", table["seed"], "seed")
     if "workers" in table:
-        kw["workers"] = ctx.number("workers", table["workers"], integer=True, minimum=1)
+        kw["workers"] = ctx.number("workers", table["workers"], "workers")
     if "timeout" in table:
-        kw["timeout"] = float(ctx.number("timeout", table["timeout"], minimum=0.0, exclusive=True))
+        kw["timeout"] = ctx.number("timeout", table["timeout"], "timeout")
     if "growth" in table:
-        kw["growth"] = float(ctx.number("growth", table["growth"], minimum=1.0, exclusive=True))
+        kw["growth"] = ctx.number("growth", table["growth"], "growth")
     if "growth_floor" in table:
-        kw["growth_floor"] = float(ctx.number("growth_floor", table["growth_floor"], minimum=0.0))
+        kw["growth_floor"] = ctx.number("growth_floor", table["growth_floor"], "growth_floor")
     if "tolerances" in table:
         kw["tolerances"] = _tolerances(ctx, table["tolerances"])
     if "waivers" in table:

@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 from typing import Any, Sequence
 
-__all__ = ["add_check_arguments", "add_commands", "emit", "cmd_report"]
+__all__ = ["add_check_arguments", "add_commands", "prepare", "emit", "cmd_report"]
 
 _PEERS_HELP = ("run the torch CPU and TF/Keras CPU adapters of the op on the same cases and seed, and show their "
                "errors beside the kernel's (default: on, for each library that is installed)")
@@ -35,22 +35,51 @@ def add_commands(subparsers: Any) -> None:
     r.set_defaults(func=cmd_report)
 
 
-def _print_paths(paths: dict[str, Path]) -> None:
-    print(f"report: {paths['html']}")
-    print(f"summary: {paths['markdown']}")
+def _report_lines(paths: dict[str, Path]) -> list[str]:
+    return [f"report: {paths['html']}", f"summary: {paths['markdown']}"]
 
 
-def emit(args: argparse.Namespace, doc: dict[str, Any]) -> None:
-    """After a check: write the report folder when --report was given."""
-    from . import gather_peers, write_report
+def _need_plots(option: str) -> None:
+    """The report's plots need matplotlib (the optional `report` extra): say so before any run."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        from ..cli import UsageError
 
-    if not getattr(args, "report", None):
+        raise UsageError(f"{option} needs matplotlib for the report's plots, and it is not installed: install "
+                         "the report extra (pip install 'refnorm[report]')") from None
+
+
+def _report_folder(path: str, option: str) -> Path:
+    from ..cli import UsageError
+    from ..destinations import DestinationError, folder_target
+    from . import FILES
+
+    try:
+        return folder_target(path, option, files=FILES.values())
+    except DestinationError as e:
+        raise UsageError(str(e)) from None
+
+
+def prepare(args: argparse.Namespace) -> None:
+    """Before `refnorm check` loads the kernel: the --report folder and matplotlib."""
+    if getattr(args, "report", None) is None:
         if getattr(args, "peers", None):
             print("refnorm: note: --peers has an effect only with --report", file=sys.stderr)
         return
+    args.report = _report_folder(args.report, "--report")
+    _need_plots("--report")
+
+
+def emit(args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
+    """After a check: write the report folder when --report was given; return the lines naming it."""
+    from . import gather_peers, write_report
+
+    if not getattr(args, "report", None):
+        return []
     quiet = getattr(args, "quiet", False)
     peers, note = gather_peers(doc, args.peers, quiet=quiet, stream=None if quiet else sys.stderr)
-    _print_paths(write_report(doc, args.report, peers=peers, peers_note=note))
+    return _report_lines(write_report(doc, args.report, peers=peers, peers_note=note))
 
 
 def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
@@ -63,11 +92,13 @@ def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
         doc = load(src)
     except FileNotFoundError:
         raise UsageError(f"RESULTS.json: {src} does not exist")
-    except ValueError as e:  # not JSON, or another schema or version
-        raise UsageError(f"RESULTS.json: {e}")
-    out = Path(args.out)
+    except (OSError, ValueError) as e:  # a folder, unreadable, not JSON, or another schema or version
+        raise UsageError(f"RESULTS.json: {src}: {e}")
+    out = _report_folder(args.out, "--out")
+    _need_plots("refnorm report")
     stored = [out / FILES["peers"], src.parent / FILES["peers"]]
     peers, note = gather_peers(doc, args.peers, stored=stored, quiet=args.quiet,
                                stream=None if args.quiet else sys.stderr)
-    _print_paths(write_report(doc, out, peers=peers, peers_note=note))
+    for line in _report_lines(write_report(doc, out, peers=peers, peers_note=note)):
+        print(line)
     return EXIT_OK
