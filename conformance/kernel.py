@@ -10,6 +10,7 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import inspect
+import math
 import sys
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
@@ -17,7 +18,7 @@ from typing import Any, Callable, Mapping
 
 from . import dtypes
 from . import ops as _ops
-from .ops import OPS, SAVED_FORMS
+from .ops import GRADS, OPS, RUNNING_OUTPUTS, SAVED_FORMS, STATISTICS
 
 __all__ = [
     "OPS",
@@ -29,6 +30,7 @@ __all__ = [
     "Kernel",
     "KernelError",
     "load_kernel",
+    "unchecked_outputs",
 ]
 
 ENTRY_POINTS = ("forward", "forward_eval", "backward", "backward_eval")
@@ -187,14 +189,23 @@ class Kernel:
             "conventions": self.conventions.as_dict(),
             "precision": {d: self.precision_for(d).as_dict() for d in self.dtypes},
             "notes": self.notes,
+            "unchecked": unchecked_outputs(self),
         }
 
 
 def _validate(k: Kernel) -> None:
+    """Check a declaration strictly, at construction (so a bad one fails at load, exit 2).
+
+    Types are exact: a flag is a bool (the string "no" is not False), a count is an int
+    (not a bool or "2"), a list of names is a tuple or list of distinct strings (lists are
+    stored as tuples). What forward returns must match what the conventions say it returns.
+    """
     def bad(what: str) -> None:
         raise KernelError(f"kernel {k.name!r}: {what}")
 
-    spec = _ops.find(k.op)
+    if not isinstance(k.name, str) or not k.name:
+        raise KernelError(f"kernel name is {k.name!r}, expected a non-empty string")
+    spec = _ops.find(k.op) if isinstance(k.op, str) else None
     if spec is None:
         bad(f"op is {k.op!r}, expected one of {', '.join(OPS)}")
     if not k.entry_points:
@@ -204,57 +215,179 @@ def _validate(k: Kernel) -> None:
             bad(f"{e} is {type(getattr(k, e)).__name__}, expected a callable")
     if not spec.has_eval and (k.forward_eval or k.backward_eval):
         bad(f"{k.op} has no eval mode; forward_eval/backward_eval are for {' and '.join(_ops.with_eval())}")
+    for f in ("outputs", "grads", "dtypes", "layouts"):
+        _names(k, f, getattr(k, f), bad)
+    for f in ("strided", "optional_params", "momentum_none", "updates_running"):
+        v = getattr(k, f)
+        if not isinstance(v, bool):
+            bad(f"{f} is {type(v).__name__} {v!r}, expected True or False")
+    mr = k.min_reduction
+    if isinstance(mr, bool) or not isinstance(mr, int) or mr < 1:
+        bad(f"min_reduction is {type(mr).__name__} {mr!r}, expected an integer >= 1 (the shortest training-mode "
+            "reduction the kernel accepts)")
+    if not isinstance(k.notes, str):
+        bad(f"notes is {type(k.notes).__name__}, expected a string")
+    if not k.dtypes:
+        bad("dtypes is empty, expected at least one storage dtype")
     for d in k.dtypes:
         if d not in dtypes.FORMATS:
             bad(f"dtype {d!r} is not one of {', '.join(dtypes.FORMATS)}")
+    if not k.layouts:
+        bad(f"layouts is empty, expected one or both of {', '.join(LAYOUTS)}")
     for lay in k.layouts:
         if lay not in LAYOUTS:
             bad(f"layout {lay!r} is not one of {', '.join(LAYOUTS)}")
     c = k.conventions
-    if c.momentum_convention not in ("new", "old"):
-        bad(f"conventions.momentum_convention is {c.momentum_convention!r}, expected 'new' or 'old'")
-    if c.running_var_estimator not in ("unbiased", "biased"):
-        bad(f"conventions.running_var_estimator is {c.running_var_estimator!r}, expected 'unbiased' or 'biased'")
-    if c.eps_placement not in ("inside", "outside"):
-        bad(f"conventions.eps_placement is {c.eps_placement!r}, expected 'inside' or 'outside'")
-    if c.running not in RUNNING_STYLES:
-        bad(f"conventions.running is {c.running!r}, expected 'return' or 'inplace'")
+    if not isinstance(c, Conventions):
+        bad(f"conventions is {type(c).__name__}, expected a conformance.Conventions")
+    for f, choices in (("momentum_convention", ("new", "old")), ("running_var_estimator", ("unbiased", "biased")),
+                       ("eps_placement", ("inside", "outside")), ("running", RUNNING_STYLES)):
+        v = getattr(c, f)
+        if not isinstance(v, str) or v not in choices:
+            bad(f"conventions.{f} is {v!r}, expected {' or '.join(map(repr, choices))}")
+    _names(c, "saved", c.saved, lambda what: bad(f"conventions.{what}"))
     allowed_saved = _ops.STATISTICS
     for s in c.saved:
         if s not in allowed_saved:
             bad(f"conventions.saved has {s!r}, expected names from {', '.join(allowed_saved)}")
     if "mean" in c.saved and "mean" not in spec.saved:
         bad(f"{k.op} has no mean to save; remove 'mean' from conventions.saved")
-    expect_out = {"y"} | set(c.saved)
-    if c.running == "return" and k.updates_running:
-        expect_out |= set(spec.running_outputs)
+    _check_outputs(k, bad)
+    if (k.backward or k.backward_eval) and not k.grads:
+        bad("grads is empty, but the kernel has a backward entry point: name what it returns, from "
+            + ", ".join(GRADS))
+    for g in k.grads:
+        if g not in GRADS:
+            bad(f"grads has {g!r}, expected names from {', '.join(GRADS)}")
+    _check_precision(k, bad)
+
+
+def _names(obj: Any, field_name: str, value: Any, bad: Callable[[str], None]) -> None:
+    """A tuple or list of distinct strings; a list is stored as a tuple."""
+    if isinstance(value, str) or not isinstance(value, (tuple, list)):
+        bad(f"{field_name} is {type(value).__name__} {value!r}, expected a tuple of names")
+    for v in value:
+        if not isinstance(v, str):
+            bad(f"{field_name} has {type(v).__name__} {v!r}, expected names (strings)")
+    dup = sorted({v for v in value if list(value).count(v) > 1})
+    if dup:
+        bad(f"{field_name} names {', '.join(map(repr, dup))} more than once")
+    if isinstance(value, list):
+        object.__setattr__(obj, field_name, tuple(value))
+
+
+def _check_outputs(k: Kernel, bad: Callable[[str], None]) -> None:
+    """outputs is exactly what forward returns: y, the saved statistics, the returned running statistics."""
+    c = k.conventions
+    returns_running = bool(_ops.get(k.op).running_outputs) and c.running == "return"
     if k.outputs[:1] != ("y",):
         bad(f"outputs is {k.outputs}, expected 'y' first")
-    unknown = set(k.outputs) - expect_out
+    allowed = {"y", *c.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
+    unknown = [o for o in k.outputs if o not in allowed]
     if unknown:
-        bad(f"outputs names {sorted(unknown)}, which the declaration does not produce "
-            f"(y, conventions.saved={list(c.saved)}, running={c.running!r})")
-    for g in k.grads:
-        if g not in ("dx", "dweight", "dbias"):
-            bad(f"grads has {g!r}, expected names from dx, dweight, dbias")
+        bad(f"outputs names {unknown}, which the declaration does not produce "
+            f"(y, conventions.saved={list(c.saved)}, running={c.running!r}"
+            + ("" if bool(_ops.get(k.op).running_outputs) else f"; {k.op} has no running statistics") + ")")
+    if k.forward is None:
+        if k.outputs != ("y",):
+            bad(f"outputs is {k.outputs}, but there is no forward to return them: without a forward, outputs "
+                "must be ('y',) (the saved statistics backward needs then come from the oracle)")
+        return
+    missing = [s for s in c.saved if s not in k.outputs]
+    if missing:
+        bad(f"conventions.saved names {missing}, which forward returns, but outputs {k.outputs} does not list "
+            f"them: give outputs={('y', *c.saved) + (RUNNING_OUTPUTS if returns_running else ())} "
+            "(or remove them from conventions.saved if forward does not return them)")
+    if returns_running and k.updates_running:
+        missing = [r for r in RUNNING_OUTPUTS if r not in k.outputs]
+        if missing:
+            bad(f"updates_running=True with conventions.running='return' means forward returns {list(RUNNING_OUTPUTS)}, "
+                f"but outputs {k.outputs} does not list {missing}: they would go unchecked. Add them to outputs, "
+                "or declare running='inplace' (forward updates the arrays it is given) or updates_running=False "
+                "(running statistics are then reported as not checked)")
+
+
+def _check_precision(k: Kernel, bad: Callable[[str], None]) -> None:
     ps = k.precision
-    plist = [] if ps is None else ([ps] if isinstance(ps, Precision) else list(ps.values()))
     if ps is not None and not isinstance(ps, (Precision, Mapping)):
         bad(f"precision is {type(ps).__name__}, expected a Precision or a mapping dtype -> Precision")
+    plist = [] if ps is None else ([ps] if isinstance(ps, Precision) else list(ps.values()))
     if isinstance(ps, Mapping):
         missing = [d for d in k.dtypes if d not in ps]
         if missing:
             bad(f"precision has no entry for dtypes {missing}")
+        for key in ps:
+            if key not in dtypes.FORMATS:
+                bad(f"precision has an entry for {key!r}, expected dtype names from {', '.join(dtypes.FORMATS)}")
+    known_outputs = {"y", *STATISTICS, *RUNNING_OUTPUTS, *GRADS}
     for p in plist:
         if not isinstance(p, Precision):
             bad(f"precision entries must be Precision, received {type(p).__name__}")
-        for name in (p.params, p.accumulate, *p.output_accumulate.values()):
-            if name is not None and name not in dtypes.FORMATS:
+        for f in ("storage", "params", "accumulate"):
+            v = getattr(p, f)
+            if v is None and f != "storage":
+                continue
+            if not isinstance(v, str) or v not in dtypes.FORMATS:
+                bad(f"precision.{f} is {v!r}, expected one of {', '.join(dtypes.FORMATS)}")
+        if not isinstance(p.output_accumulate, Mapping):
+            bad(f"precision.output_accumulate is {type(p.output_accumulate).__name__}, expected a mapping "
+                "output -> dtype")
+        for o, name in p.output_accumulate.items():
+            if o not in known_outputs:
+                bad(f"precision.output_accumulate names output {o!r}, expected names from "
+                    f"{', '.join(sorted(known_outputs))}")
+            if not isinstance(name, str) or name not in dtypes.FORMATS:
                 bad(f"precision names dtype {name!r}, expected one of {', '.join(dtypes.FORMATS)}")
-        if p.summation not in SUMMATION_MODELS:
+        if not isinstance(p.summation, str) or p.summation not in SUMMATION_MODELS:
             bad(f"precision.summation is {p.summation!r}, expected one of {', '.join(SUMMATION_MODELS)}")
-        if not p.lam > 0:
-            bad(f"precision.lam is {p.lam!r}, expected a positive number")
+        lam = p.lam
+        if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not math.isfinite(lam) or not lam > 0:
+            bad(f"precision.lam is {lam!r}, expected a finite positive number")
+
+
+def unchecked_outputs(k: Kernel) -> list[dict[str, Any]]:
+    """What the declaration leaves unchecked: [{"output", "modes", "reason"}], one entry per output and reason.
+
+    An output is unchecked when no entry point returns it in a mode (no forward, no backward,
+    no eval entry point), when grads leaves it out, or for running statistics when
+    updates_running=False or no forward returns them. Cases the declaration skips (dtypes,
+    layouts, strides, min_reduction) are coverage, reported elsewhere; this is about outputs.
+    """
+    out: list[dict[str, Any]] = []
+    running_op = bool(_ops.get(k.op).running_outputs)
+
+    def add(name: str, modes: tuple[str, ...], reason: str) -> None:
+        out.append({"output": name, "modes": list(modes), "reason": reason})
+
+    modes = ("train", "eval") if running_op else ("train",)
+    fwd = {"train": k.forward, "eval": k.forward_eval}
+    bwd = {"train": k.backward, "eval": k.backward_eval}
+    entry = {"train": ("forward", "backward"), "eval": ("forward_eval", "backward_eval")}
+    no_y = tuple(m for m in modes if fwd[m] is None)
+    if no_y:
+        add("y", no_y, " and ".join(f"no {entry[m][0]} entry point" for m in no_y))
+    if k.forward is None:
+        for s in k.conventions.saved:
+            add(s, ("train",), "no forward entry point: backward is given the oracle's saved statistics "
+                "(rounded to the params dtype), the kernel's own are never computed")
+    if running_op:
+        if not k.updates_running:
+            why = "updates_running=False: the running-statistic update is not checked"
+        elif k.forward is None:
+            why = "no forward entry point: the running-statistic update is not checked"
+        else:
+            why = None
+        if why:
+            for r in RUNNING_OUTPUTS:
+                add(r, ("train",), why)
+    have = tuple(m for m in modes if bwd[m] is not None)
+    missing = tuple(m for m in modes if bwd[m] is None)
+    for g in GRADS:
+        if g not in k.grads and have:
+            add(g, have, f"not in grads {tuple(k.grads)}")
+        if missing:
+            add(g, missing, " and ".join(f"no {entry[m][1]} entry point" for m in missing))
+    return out
 
 
 def call_with(fn: Callable, kwargs: dict[str, Any]) -> Any:

@@ -28,10 +28,31 @@ def summary_table(doc: dict[str, Any]) -> str:
     return "\n".join(out)
 
 
+def unchecked_names(doc: dict[str, Any]) -> list[str]:
+    """The outputs the kernel's declaration leaves unchecked (doc["kernel"]["unchecked"]), each once, in order."""
+    names: list[str] = []
+    for u in doc.get("kernel", {}).get("unchecked", []):
+        if u["output"] not in names:
+            names.append(u["output"])
+    return names
+
+
+def unchecked_lines(doc: dict[str, Any]) -> list[str]:
+    """One line per unchecked output and reason: 'not checked: running_var (train): updates_running=False: ...'."""
+    return [f"not checked: {u['output']} ({'/'.join(u.get('modes', [])) or 'any mode'}): {u['reason']}"
+            for u in doc.get("kernel", {}).get("unchecked", [])]
+
+
 def verdict_lines(doc: dict[str, Any]) -> list[str]:
+    """The verdict and its counts; the outputs the declaration leaves unchecked, named on the verdict line
+    itself (so that a one-line view keeps them) and then one per line with the reason; the caution."""
     c = doc["counts"]
     v = doc["verdict"].upper()
-    lines = [f"verdict: {v}  ({c['passed']} passed, {c['failed']} failed, {c['crashed']} crashed, "
-             f"{c['timed_out']} timed out, {c['error']} errors, {c['skipped']} skipped)"]
+    first = (f"verdict: {v}  ({c['passed']} passed, {c['failed']} failed, {c['crashed']} crashed, "
+             f"{c['timed_out']} timed out, {c['error']} errors, {c['skipped']} skipped)")
+    names = unchecked_names(doc)
+    if names:
+        first += f"; outputs not checked by declaration: {', '.join(names)}"
+    lines = [first, *unchecked_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines

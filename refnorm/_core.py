@@ -35,6 +35,19 @@ Two ways to evaluate the same formulas:
   running sum, reached 80). Where the weight is constant along the inner
   axes (batch, group, instance norm) the formulas are rearranged, without
   changing them, to save passes (see the two functions).
+
+Range. The fused evaluation squares deviations and multiplies gradients by
+them in plain float64; for finite data far from magnitude 1 (1e200, 1e-170)
+that over- or underflows. The groups where it may have (told from the
+statistics and sums it computes anyway, so ordinary data pays nothing) are
+recomputed on copies scaled by powers of two, which is exact
+(:mod:`refnorm._scaled`).
+
+Floating-point exceptions. The fused functions compute under
+``np.errstate(all="ignore")``: IEEE exceptional results are values in the
+outputs (NaN, +-inf), never warnings or FloatingPointError, because an
+intermediate overflow that the scaled evaluation then corrects would
+otherwise be reported for a result that is right.
 """
 
 from __future__ import annotations
@@ -45,6 +58,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import _scaled
 from ._moments import Moments, group_size, mean_square, moments, sum_keep
 from ._parallel import chunk_bounds, run_chunks
 
@@ -99,8 +113,19 @@ def batch_stats(x: np.ndarray, red: tuple[int, ...], eps: float, placement: str,
 
 
 def fixed_stats(mean: np.ndarray | None, var: np.ndarray, eps: float, placement: str) -> Stats:
-    """Statistics given from outside (running statistics in eval mode)."""
-    return Stats(mean=mean, var=var, rstd=inv_std(var, eps, placement))
+    """Statistics given from outside (running statistics in eval mode).
+
+    Where var + eps (or sqrt(var) + eps) passes float64's largest value although both are
+    finite, r is formed from var/4 and eps/4 (eps/2 outside the root) and halved: exact
+    scalings, and r itself (about 2^-512) is in range.
+    """
+    with np.errstate(over="ignore"):
+        r = inv_std(var, eps, placement)
+        wide = (r == 0) & np.isfinite(var)
+        if wide.any():
+            half = inv_std(var / 4, eps / 4 if placement == "inside" else eps / 2, placement) / 2
+            r = np.where(wide, half, r)
+    return Stats(mean=mean, var=var, rstd=r)
 
 
 def normalized(x: np.ndarray, st: Stats) -> np.ndarray:
@@ -171,10 +196,11 @@ def stats_for_backward(
     """The batch statistics of x, or the saved ones (keepdims mean/rstd) when given."""
     if rstd is None:
         return batch_stats(x, red, eps, placement, center)
-    if placement == "inside":
-        var = 1.0 / (rstd * rstd) - eps
-    else:
-        var = (1.0 / rstd - eps) ** 2
+    with np.errstate(over="ignore", divide="ignore"):  # an rstd outside the fast window: see _scaled
+        if placement == "inside":
+            var = 1.0 / (rstd * rstd) - eps
+        else:
+            var = (1.0 / rstd - eps) ** 2
     return Stats(mean=mean, var=var, rstd=rstd)
 
 
@@ -420,13 +446,32 @@ def fused_forward(
         if bc is not None:
             yc += bc
 
-    run_chunks(work, bounds, x.size)
-    if stats is not None:
-        return y, stats
-    if center:
-        mom = Moments(m0=m0, c=c, dev=None, m2=m2, n=n)
-        return y, Stats(mean=mom.mean, var=var, rstd=rstd, moments=mom)
-    return y, Stats(mean=None, var=var, rstd=rstd)
+    with np.errstate(all="ignore"):  # see "Floating-point exceptions" in the module docstring
+        run_chunks(work, bounds, x.size)
+        if stats is not None:
+            sus = _scaled.given_suspect(stats.rstd, stats.mean)
+            if sus.any() or _scaled.weight_extreme(w):
+                need = _scaled.need_scaling(sus, red, x, w=w, given=(stats.rstd, stats.mean))
+                if need.any():
+                    ys, _ = _scaled.scaled_forward(x, red, w, b, eps=eps, placement=placement, center=center,
+                                                   mean=stats.mean, rstd=stats.rstd)
+                    np.copyto(y, ys, where=np.broadcast_to(need, shape))
+            return y, stats
+        shift = None
+        sus = _scaled.x_suspect(var, m0 if center else None)
+        if sus.any() or _scaled.weight_extreme(w):
+            need = _scaled.need_scaling(sus, red, x, w=w)
+            if need.any():
+                ys, sc = _scaled.scaled_forward(x, red, w, b, eps=eps, placement=placement, center=center)
+                np.copyto(y, ys, where=np.broadcast_to(need, shape))
+                var, rstd = np.where(need, sc.var, var), np.where(need, sc.rstd, rstd)
+                if center:
+                    m0, c = np.where(need, sc.moments.m0, m0), np.where(need, sc.moments.c, c)
+                    m2, shift = np.where(need, sc.moments.m2, m2), np.where(need, sc.k, 0)
+        if center:
+            mom = Moments(m0=m0, c=c, dev=None, m2=m2, n=n, shift=shift)
+            return y, Stats(mean=mom.mean, var=var, rstd=rstd, moments=mom)
+        return y, Stats(mean=None, var=var, rstd=rstd)
 
 
 def fused_backward(
@@ -479,6 +524,16 @@ def fused_backward(
     common = tuple(a for a in red if a in param_red)  # the weight is constant along these
     red_rest = tuple(a for a in red if a not in common)
     param_rest = tuple(a for a in param_red if a not in common)
+    n_common = group_size(shape, common)
+    # The statistics and sums that tell which groups the fast evaluation may have got wrong by
+    # over- or underflow (refnorm._scaled): each chunk writes its part, judged once at the end.
+    kshape = tuple(1 if i in red else d for i, d in enumerate(shape))
+    cshape = tuple(1 if i in common else d for i, d in enumerate(shape))
+    branch_a = bool(common) and stats is None and center and training
+    rec = {name: np.empty(cshape if name in ("sdy", "dwf") else kshape)
+           for name, wanted in (("var", stats is None), ("m0", stats is None and center), ("r", stats is None),
+                                ("sdy", bool(common)), ("dwf", bool(common)), ("k", training),
+                                ("sgn", training and center), ("corr", branch_a)) if wanted}
 
     def work(lo: int, hi: int):
         ix = _index(s, lo, hi)
@@ -486,10 +541,14 @@ def fused_backward(
         wc = _take(w, s, lo, hi)
         buf = np.empty(xc.shape)
         if stats is None:
-            dev, _, cc, _, vc, rc = _chunk_dev(xc, red, n, eps, placement, center, buf, block)
+            dev, m0c, cc, _, vc, rc = _chunk_dev(xc, red, n, eps, placement, center, buf, block)
+            rec["var"][ix], rec["r"][ix] = vc, rc
+            if center:
+                rec["m0"][ix] = m0c
         else:
             rc, vc, cc = _take(stats.rstd, s, lo, hi), _take(stats.var, s, lo, hi), None
             dev = _given_dev(xc, _take(stats.mean, s, lo, hi), buf)
+
         xhat = None
         sg = None  # sum(g) over red, when it comes from the shared sum(dy)
         if common:
@@ -498,6 +557,7 @@ def fused_backward(
             if cc is not None:
                 dw -= cc * sdy
             dw *= rc
+            rec["sdy"][ix], rec["dwf"][ix] = sdy, dw
             if param_rest:
                 dw = sum_keep(dw, param_rest)
             db = sum_keep(sdy, param_rest) if param_rest else sdy
@@ -517,9 +577,12 @@ def fused_backward(
         if not cross:
             dweight[ix], dbias[ix] = dw, db
         if not training:
-            # dx = g * r
+            # dx = g * r, as dy (r w) where r w is a per-group constant: one rounding of the
+            # product, whose intermediate cannot overflow or underflow where the result does not.
             if wc is None:
                 np.multiply(dyc, rc, out=dxc)
+            elif _small(rc, wc, dxc.size):
+                np.multiply(dyc, rc * wc, out=dxc)
             else:
                 np.multiply(dyc, wc, out=dxc)
                 dxc *= rc
@@ -539,6 +602,7 @@ def fused_backward(
             buf *= coef
             dxc -= buf
             dxc -= corr - coef * cc
+            rec["sgn"][ix], rec["k"][ix], rec["corr"][ix] = sg / n, k, corr
             return dw, db
         gc = dxc
         if center:
@@ -558,8 +622,11 @@ def fused_backward(
         else:
             np.multiply(dyc, wc, out=gc)
         beta = rc if placement == "inside" else _beta_outside(vc)
+        if center:
+            rec["sgn"][ix] = sg / n
         if xhat is not None:
             k = _reduce(gc, xhat, red, block) / n
+            rec["k"][ix] = k
             xhat *= beta * k  # (beta * k) * xhat
             if gc is dxc:
                 dxc *= rc  # r * gc
@@ -569,6 +636,7 @@ def fused_backward(
             return dw, db
         k = _reduce(gc, dev, red, block)
         k *= rc / n
+        rec["k"][ix] = k
         # dx = r (gc - beta k (dev - c))
         if dev is buf:
             if cc is not None:
@@ -583,10 +651,28 @@ def fused_backward(
         dxc *= rc
         return dw, db
 
-    parts = run_chunks(work, bounds, x.size)
-    if cross:
-        dweight, dbias = parts[0][0].copy(), parts[0][1].copy()
-        for dw, db in parts[1:]:
-            dweight += dw
-            dbias += db
+    with np.errstate(all="ignore"):  # see "Floating-point exceptions" in the module docstring
+        parts = run_chunks(work, bounds, x.size)
+        if cross:
+            dweight, dbias = parts[0][0].copy(), parts[0][1].copy()
+            for dw, db in parts[1:]:
+                dweight += dw
+                dbias += db
+        if stats is None:
+            suspect = _scaled.x_suspect(rec["var"], rec["m0"] if center else None)
+            r = rec["r"]
+        else:
+            suspect = _scaled.given_suspect(stats.rstd, stats.mean)
+            r = stats.rstd
+        suspect = suspect | _scaled.sums_suspect(
+            red, r, [rec[k] for k in ("sgn", "k") if k in rec],
+            [(rec["sdy"], n_common)] if common else [], [rec[k] for k in ("dwf", "corr") if k in rec])
+        if suspect.any() or _scaled.weight_extreme(w):
+            given = None if stats is None else (stats.rstd, stats.mean)
+            need = _scaled.need_scaling(suspect, red, x, dy, w, given=given)
+            if need.any():
+                dxs, dweight, dbias = _scaled.scaled_backward(
+                    dy, x, red, w, param_red, eps=eps, placement=placement, center=center, training=training,
+                    mean=None if stats is None else stats.mean, rstd=None if stats is None else stats.rstd)
+                np.copyto(dx, dxs, where=np.broadcast_to(need, shape))
     return dx, dweight, dbias

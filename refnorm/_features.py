@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ._validate import canonical_axes, describe
+from ._validate import canonical_axes, check_sizes, describe
 from .errors import RefnormError
 
 
@@ -35,8 +35,8 @@ def feature_plan(shape: tuple[int, ...], normalized_shape: Any, axes: Any) -> Fe
             f"received normalized_shape={normalized_shape!r}, axes={axes!r}"
         )
     if normalized_shape is not None:
-        ns = (normalized_shape,) if isinstance(normalized_shape, (int, np.integer)) else tuple(normalized_shape)
-        if not ns or len(ns) > ndim or tuple(shape[ndim - len(ns):]) != tuple(int(d) for d in ns):
+        ns = check_sizes("normalized_shape", normalized_shape)
+        if not ns or len(ns) > ndim or tuple(shape[ndim - len(ns):]) != ns:
             raise RefnormError(
                 f"normalized_shape is {ns}, expected the trailing dims of x (shape {shape}), e.g. {shape[-1:]}"
             )

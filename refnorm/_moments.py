@@ -29,7 +29,9 @@ class Moments:
     precision); ``dev = x - m0`` is kept by :func:`moments` because every later
     pass needs it, and is None from the fused chunked core (``_core.fused_*``),
     which never holds it for the whole array; ``m2`` is the corrected sum of
-    squared deviations; ``n`` the group length.
+    squared deviations; ``n`` the group length. ``shift`` (keepdims int64, or None
+    for 0) is set by the scaled evaluation (:mod:`refnorm._scaled`): m2 is then the sum for
+    x 2^shift, so that a variance in range is not lost to an M2 beyond it.
     """
 
     m0: np.ndarray
@@ -37,6 +39,7 @@ class Moments:
     dev: np.ndarray | None
     m2: np.ndarray
     n: int
+    shift: np.ndarray | None = None
 
     @property
     def mean(self) -> np.ndarray:
@@ -45,7 +48,11 @@ class Moments:
 
     def var(self, ddof: int = 0) -> np.ndarray:
         """M2 / (n - ddof): biased for ddof=0, unbiased (Bessel) for ddof=1."""
-        return self.m2 / (self.n - ddof)
+        v = self.m2 / (self.n - ddof)
+        if self.shift is not None:
+            with np.errstate(over="ignore", under="ignore"):
+                v = np.ldexp(v, -2 * self.shift)  # exact unless the variance itself leaves the range
+        return v
 
     def centered(self) -> np.ndarray:
         """x - mean evaluated as (x - m0) - c, keeping the low part of the mean."""

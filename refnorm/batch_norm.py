@@ -13,10 +13,13 @@ from ._validate import (
     VAR_ESTIMATORS,
     as_float64,
     canonical_axis,
+    check_bool,
     check_choice,
     check_eps,
     check_momentum,
     check_nonempty,
+    check_nonnegative,
+    check_positive,
     check_rank,
     check_reduction_length,
     check_same_shape,
@@ -83,12 +86,17 @@ def batch_norm_forward(
 
     NaN and Inf in x propagate by IEEE arithmetic: a NaN in a channel makes
     its mean NaN; Infs of one sign make it that Inf (sum(x)/n); either way the
-    channel's variance and whole output are NaN (Inf - Inf).
+    channel's variance and whole output are NaN (Inf - Inf). Finite x of any
+    magnitude is normalized accurately (channels far from magnitude 1 are
+    computed on copies scaled by a power of two, which is exact); a
+    statistic whose value is beyond float64's range (the variance of data
+    of size 1e200) rounds to inf, as IEEE 754 rounding does.
     """
     xf = as_float64("x", x)
     check_rank("x", xf, 2)
     check_nonempty("x", xf)
     ax = canonical_axis(axis, xf.ndim)
+    training = check_bool("training", training)
     eps = check_eps(eps)
     check_choice("eps_placement", eps_placement, EPS_PLACEMENTS)
     check_choice("momentum_convention", momentum_convention, MOMENTUM_CONVENTIONS)
@@ -101,6 +109,8 @@ def batch_norm_forward(
     rv = param("running_var", running_var, (c,), what)
     if (rm is None) != (rv is None):
         raise RefnormError("running_mean and running_var must be given together (or neither)")
+    check_nonnegative("running_var", rv, "a variance")
+    mom, seen = check_momentum(momentum, batches_seen, needed=training and rm is not None)
     xv = channel_view(xf, ax)
     bshape = (1, c, 1)
     wv = None if w is None else w.reshape(bshape)
@@ -118,7 +128,6 @@ def batch_norm_forward(
     n = xv.shape[0] * xv.shape[2]
     new_rm = new_rv = None
     if rm is not None:
-        mom, seen = check_momentum(momentum, batches_seen)
         check_reduction_length(n, running_var_estimator, "batch_norm_forward")
     y, st = _core.fused_forward(xv, _RED, wv, bv, eps=eps, placement=eps_placement, center=True)
     if rm is not None:
@@ -161,6 +170,7 @@ def batch_norm_backward(
     check_nonempty("x", xf)
     check_same_shape("dy", dyf, "x", xf)
     ax = canonical_axis(axis, xf.ndim)
+    training = check_bool("training", training)
     eps = check_eps(eps)
     check_choice("eps_placement", eps_placement, EPS_PLACEMENTS)
     c = xf.shape[ax]
@@ -178,14 +188,17 @@ def batch_norm_backward(
 
 def _stats_for_backward(xv, training, mean, rstd, running_mean, running_var, c, eps, placement, what):
     bshape = (1, c, 1)
+    # Every statistic given is checked, also the ones this mode does not read.
+    rm = param("running_mean", running_mean, (c,), what)
+    rv = param("running_var", running_var, (c,), what)
+    check_nonnegative("running_var", rv, "a variance")
+    sm = param("mean", mean, (c,), what)
+    sr = param("rstd", rstd, (c,), what)
+    check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     if not training:
-        rm = param("running_mean", running_mean, (c,), what)
-        rv = param("running_var", running_var, (c,), what)
         if rm is None or rv is None:
             raise RefnormError(f"running_mean and running_var are None, expected arrays of shape ({c},) in eval mode")
         return _core.fixed_stats(rm.reshape(bshape), rv.reshape(bshape), eps, placement)
-    sm = param("mean", mean, (c,), what)
-    sr = param("rstd", rstd, (c,), what)
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
     if sr is None:

@@ -176,10 +176,19 @@ def exact_var(a: Any, ddof: int = 0) -> Fraction:
     return _fraction(n * s2 - s1 * s1, 2 * e, n * (n - ddof))
 
 
+def _to_float(v: Any) -> float:
+    """float(v), correctly rounded (Fraction.__float__ divides integers with one rounding), and
+    +-inf beyond float64's range as IEEE 754 round-to-nearest gives, where Fraction raises OverflowError."""
+    try:
+        return float(v)
+    except OverflowError:
+        return math.inf if v > 0 else -math.inf
+
+
 def to_float64(a: Any) -> np.ndarray:
-    """Round an array of Fractions (or ints, mpf) to float64, each once (Fraction.__float__ is correctly rounded)."""
+    """Round an array of Fractions (or ints, mpf) to float64, each once (+-inf beyond the range)."""
     arr = np.asarray(a, dtype=object)
-    return np.array([float(v) for v in arr.ravel().tolist()], dtype=np.float64).reshape(arr.shape)
+    return np.array([_to_float(v) for v in arr.ravel().tolist()], dtype=np.float64).reshape(arr.shape)
 
 
 # --------------------------------------------------------------------------
@@ -398,8 +407,8 @@ def normalize(
             bj = [mpmath.mpf(0)] * n if br is None else [mpmath.mpf(float(t)) for t in br[j]]
             y[j] = [float(di * r * wi + bi) for di, wi, bi in zip(d, wj, bj)]
             xhat_mp[j] = [di * r for di in d]
-            means[j] = float(mean_q)
-            vars_[j] = float(var_q)
+            means[j] = _to_float(mean_q)
+            vars_[j] = _to_float(var_q)
             rstds[j] = float(r)
             if dyr is not None:
                 g = [mpmath.mpf(float(t)) * wi for t, wi in zip(dyr[j], wj)]
@@ -688,9 +697,9 @@ def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: f
     for j in range(G):
         sx = _RowSums(xr[j])
         m2 = sx.m2(center)
-        means[j] = float(sx.mean) if center else 0.0
-        vb[j] = float(m2 / n)
-        vu[j] = float(m2 / (n - 1)) if n > 1 else math.nan
+        means[j] = _to_float(sx.mean) if center else 0.0
+        vb[j] = _to_float(m2 / n)
+        vu[j] = _to_float(m2 / (n - 1)) if n > 1 else math.nan
         denom_q = m2 / n + eps_q
         with mpmath.workdps(DPS):
             r_mp = 1 / mpmath.sqrt(_mpf(denom_q))
@@ -715,7 +724,7 @@ def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: f
         B = Dn * (1 << (sx.e - lo)) if sx.e > lo else Dn
         num = A * Q - B * P                                  # bracket = num_i 2^lo / (n Q)
         dx[j] = _ratio_to_float(num, n * Q, lo) * r
-        db[j] = float(sg.sum_fraction())
+        db[j] = _to_float(sg.sum_fraction())
         with mpmath.workdps(DPS):
             dw[j] = float(_mpf(gd) * r_mp)                  # sum dy x_hat = r sum g d
     return LargeNorm(

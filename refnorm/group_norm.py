@@ -14,6 +14,7 @@ from ._validate import (
     check_choice,
     check_eps,
     check_nonempty,
+    check_positive,
     check_rank,
     check_same_shape,
     describe,
@@ -50,6 +51,7 @@ class _GroupPlan:
 
 
 def _setup(x: Any, num_groups: Any, axis: int, eps: float, placement: str) -> tuple[np.ndarray, _GroupPlan, float]:
+    """x in float64 and its plan, after every check; num_groups=None: one group per channel."""
     xf = as_float64("x", x)
     check_rank("x", xf, 2)
     check_nonempty("x", xf)
@@ -58,11 +60,14 @@ def _setup(x: Any, num_groups: Any, axis: int, eps: float, placement: str) -> tu
         raise RefnormError("axis is 0, expected the channel axis (1 for channels-first, -1 for channels-last); "
                            "axis 0 is the batch")
     c = xf.shape[ax]
+    if num_groups is None:
+        num_groups = c
     if isinstance(num_groups, bool) or not isinstance(num_groups, (int, np.integer)) or num_groups < 1:
         raise RefnormError(f"num_groups is {describe(num_groups)}, expected a positive integer dividing C={c}")
     if c % num_groups:
+        shown = int(num_groups) if num_groups < 10**30 else f"an integer of {len(str(int(num_groups)))} digits"
         raise RefnormError(
-            f"num_groups is {num_groups}, expected a divisor of the {c} channels along axis {ax} of x"
+            f"num_groups is {shown}, expected a divisor of the {c} channels along axis {ax} of x"
         )
     eps = check_eps(eps)
     check_choice("eps_placement", placement, EPS_PLACEMENTS)
@@ -132,6 +137,7 @@ def group_norm_backward(
     sr = param("rstd", rstd, ss, "one value per sample and group")
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
+    check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     xv = plan.view(xf)
     st = None if sr is None else _core.stats_for_backward(
         xv, plan.red, sm.reshape(plan.stat_view), sr.reshape(plan.stat_view),

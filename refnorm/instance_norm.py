@@ -11,8 +11,11 @@ from ._validate import (
     MOMENTUM_CONVENTIONS,
     VAR_ESTIMATORS,
     as_float64,
+    check_bool,
     check_choice,
     check_momentum,
+    check_nonnegative,
+    check_positive,
     check_reduction_length,
     check_same_shape,
     param,
@@ -23,13 +26,6 @@ from .results import NormBackward, NormForward
 from .running import _update
 
 __all__ = ["instance_norm_forward", "instance_norm_backward"]
-
-
-def _channels(x: Any, axis: int) -> int:
-    xf = np.asarray(x)
-    if xf.ndim < 2:
-        raise RefnormError(f"x has rank {xf.ndim} (shape {xf.shape}), expected rank >= 2")
-    return xf.shape[axis]
 
 
 def instance_norm_forward(
@@ -62,8 +58,9 @@ def instance_norm_forward(
 
     Returns NormForward with mean, var, rstd of shape (N, C).
     """
-    c = _channels(x, axis)
-    xf, plan, eps = _setup(x, c, axis, eps, eps_placement)
+    xf, plan, eps = _setup(x, None, axis, eps, eps_placement)
+    c = plan.c
+    training = check_bool("training", training)
     check_choice("momentum_convention", momentum_convention, MOMENTUM_CONVENTIONS)
     check_choice("running_var_estimator", running_var_estimator, VAR_ESTIMATORS)
     what = f"one value per channel along axis {plan.axis} of x"
@@ -73,6 +70,8 @@ def instance_norm_forward(
     rv = param("running_var", running_var, (c,), what)
     if (rm is None) != (rv is None):
         raise RefnormError("running_mean and running_var must be given together (or neither)")
+    check_nonnegative("running_var", rv, "a variance")
+    mom, seen = check_momentum(momentum, batches_seen, needed=training and rm is not None)
     xv = plan.view(xf)
     pv = plan.param_view
     ss = (plan.shape[0], c)
@@ -91,7 +90,6 @@ def instance_norm_forward(
     rstd = np.broadcast_to(st.rstd, np.broadcast_shapes(st.rstd.shape, plan.stat_view)).reshape(ss)
     new_rm, new_rv = rm, rv
     if training and rm is not None:
-        mom, seen = check_momentum(momentum, batches_seen)
         check_reduction_length(st.moments.n, running_var_estimator, "instance_norm_forward")
         ddof = 1 if running_var_estimator == "unbiased" else 0
         inst_var = st.moments.var(ddof).reshape(ss)
@@ -121,8 +119,9 @@ def instance_norm_backward(
     running statistics: dx = dy * weight_c * r_c. dweight, dbias of shape (C,).
     Saved ``mean``/``rstd`` have shape (N, C).
     """
-    c = _channels(x, axis)
-    xf, plan, eps = _setup(x, c, axis, eps, eps_placement)
+    xf, plan, eps = _setup(x, None, axis, eps, eps_placement)
+    c = plan.c
+    training = check_bool("training", training)
     dyf = as_float64("dy", dy)
     check_same_shape("dy", dyf, "x", xf)
     what = f"one value per channel along axis {plan.axis} of x"
@@ -130,15 +129,18 @@ def instance_norm_backward(
     pv = plan.param_view
     ss = (plan.shape[0], c)
     xv = plan.view(xf)
+    # Every statistic given is checked, also the ones this mode does not read.
+    rm = param("running_mean", running_mean, (c,), what)
+    rv = param("running_var", running_var, (c,), what)
+    check_nonnegative("running_var", rv, "a variance")
+    sm = param("mean", mean, ss, "one value per sample and channel")
+    sr = param("rstd", rstd, ss, "one value per sample and channel")
+    check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     if not training:
-        rm = param("running_mean", running_mean, (c,), what)
-        rv = param("running_var", running_var, (c,), what)
         if rm is None or rv is None:
             raise RefnormError(f"running_mean and running_var are None, expected arrays of shape ({c},) in eval mode")
         st = _core.fixed_stats(rm.reshape(pv), rv.reshape(pv), eps, eps_placement)
     else:
-        sm = param("mean", mean, ss, "one value per sample and channel")
-        sr = param("rstd", rstd, ss, "one value per sample and channel")
         if (sm is None) != (sr is None):
             raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
         st = None if sr is None else _core.stats_for_backward(

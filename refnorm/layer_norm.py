@@ -6,7 +6,15 @@ from typing import Any
 
 from . import _core
 from ._features import check_param, check_stat, feature_plan
-from ._validate import EPS_PLACEMENTS, as_float64, check_choice, check_eps, check_nonempty, check_same_shape
+from ._validate import (
+    EPS_PLACEMENTS,
+    as_float64,
+    check_choice,
+    check_eps,
+    check_nonempty,
+    check_positive,
+    check_same_shape,
+)
 from .errors import RefnormError
 from .results import NormBackward, NormForward
 
@@ -78,6 +86,7 @@ def layer_norm_backward(
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     sm = check_stat("mean", None if mean is None else as_float64("mean", mean), plan)
     sr = check_stat("rstd", None if rstd is None else as_float64("rstd", rstd), plan)
+    check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     if (sm is None) != (sr is None):
         raise RefnormError("mean and rstd must be given together (the saved statistics), or neither")
     xv = xf.reshape(plan.view)

@@ -6,7 +6,15 @@ from typing import Any
 
 from . import _core
 from ._features import check_param, check_stat, feature_plan
-from ._validate import EPS_PLACEMENTS, as_float64, check_choice, check_eps, check_nonempty, check_same_shape
+from ._validate import (
+    EPS_PLACEMENTS,
+    as_float64,
+    check_choice,
+    check_eps,
+    check_nonempty,
+    check_positive,
+    check_same_shape,
+)
 from .results import NormBackward, NormForward
 
 __all__ = ["rms_norm_forward", "rms_norm_backward"]
@@ -69,6 +77,7 @@ def rms_norm_backward(
     plan = feature_plan(xf.shape, normalized_shape, axes)
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     sr = check_stat("rstd", None if rstd is None else as_float64("rstd", rstd), plan)
+    check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     xv = xf.reshape(plan.view)
     st = None if sr is None else _core.stats_for_backward(xv, plan.red, None, sr, eps=eps, placement=eps_placement,
                                                           center=False)

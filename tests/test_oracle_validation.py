@@ -235,3 +235,173 @@ def test_constant_group_with_zero_eps():
     assert np.all(np.isnan(out.y[:, 0]))
     assert np.all(np.isfinite(out.y[:, 1:]))
     np.testing.assert_array_equal(refnorm.batch_norm_forward(x, eps=1e-5).y[:, 0], 0.0)
+
+
+# --------------------------------------------------------------------------- strict types (issue 7)
+# Each of these was accepted, or escaped as another exception type, before the boundary checks
+# were made strict. Common practice: a validating API refuses what it cannot interpret rather
+# than guessing (the project's rule: an error names the argument, the expectation and the value).
+
+
+@pytest.mark.parametrize("fn", [refnorm.instance_norm_forward,
+                                lambda x, **kw: refnorm.instance_norm_backward(x, x, **kw)])
+def test_instance_norm_checks_axis_before_using_it(fn):
+    """x.shape[axis] used to be read before axis was checked: IndexError, TypeError."""
+    with _raises(r"^axis is 3, expected an integer in \[-3, 3\)"):
+        fn(X, axis=3)
+    with _raises(r"^axis is str '1', expected an integer"):
+        fn(X, axis="1")
+    with _raises(r"^axis is float 1.0, expected an integer"):
+        fn(X, axis=1.0)
+    with _raises(r"^x has rank 1"):
+        fn(np.ones(4))
+
+
+def test_huge_python_integers_are_refnorm_errors():
+    """float(10**400) raises OverflowError; the boundary turns it into a RefnormError naming the argument."""
+    huge = 10**400
+    with _raises(r"^eps is an integer of 401 digits, beyond float64's range"):
+        refnorm.layer_norm_forward(X, 5, eps=huge)
+    with _raises(r"^momentum is an integer of 401 digits"):
+        refnorm.batch_norm_forward(X, running_mean=RM, running_var=RV, momentum=huge)
+    with _raises(r"^momentum is an integer of 401 digits"):
+        refnorm.running_update(RM, RV, momentum=huge)
+    with _raises(r"^batches_seen is an integer of 401 digits, expected an integer >= 0"):
+        refnorm.running_update(RM, RV, momentum=None, batches_seen=huge)
+    with _raises(r"^batches_seen is an integer of 401 digits"):
+        refnorm.instance_norm_forward(X, running_mean=RM, running_var=RV, momentum=None, batches_seen=huge)
+    with _raises(r"^axis is an integer of 401 digits"):
+        refnorm.batch_norm_forward(X, axis=huge)
+    with _raises(r"^num_groups is an integer of 401 digits, expected a divisor of the 3 channels"):
+        refnorm.group_norm_forward(X, huge)
+
+
+def test_ragged_nested_list_names_the_argument():
+    """np.asarray of a ragged list raises NumPy's ValueError, which named no argument."""
+    ragged = [[1.0, 2.0], [3.0]]
+    with _raises(r"^x is list \[\[1.0, 2.0\], \[3.0\]\], which NumPy cannot read as one rectangular array"):
+        refnorm.layer_norm_forward(ragged, 2)
+    with _raises(r"^weight is list .* cannot read as one rectangular array"):
+        refnorm.batch_norm_forward(X, [[1.0], [1.0, 2.0], [3.0]])
+    with _raises(r"^dy is list .* cannot read as one rectangular array"):
+        refnorm.rms_norm_backward([[1.0], [2.0, 3.0]], X, 5)
+
+
+@pytest.mark.parametrize("bad, shown", [((5.5,), r"tuple \(5.5,\)"), ("5", "str '5'"), ((True,), r"tuple \(True,\)"),
+                                        (5.0, "float 5.0"), ((3, "5"), r"tuple \(3, '5'\)"), (None, None)])
+def test_normalized_shape_must_be_integers(bad, shown):
+    """normalized_shape=(5.5,) and "5" used to be accepted (int(5.5) == 5, tuple("5") == ("5",))."""
+    if bad is None:  # neither normalized_shape nor axes
+        with _raises(r"^give exactly one of normalized_shape"):
+            refnorm.layer_norm_forward(X)
+        return
+    for fn in (refnorm.layer_norm_forward, refnorm.rms_norm_forward):
+        with _raises(rf"^normalized_shape is {shown}, expected"):
+            fn(X, bad)
+    with _raises(rf"^normalized_shape is {shown}, expected"):
+        refnorm.layer_norm_backward(DY, X, bad)
+    # numpy integers and lists are sizes too
+    np.testing.assert_array_equal(refnorm.layer_norm_forward(X, [np.int64(3), 5]).y,
+                                  refnorm.layer_norm_forward(X, (3, 5)).y)
+
+
+@pytest.mark.parametrize("value", ["False", "True", 0, 1, None, np.array(False)])
+def test_training_must_be_a_bool(value):
+    """training="False" is truthy and used to run training mode."""
+    for call in (lambda: refnorm.batch_norm_forward(X, training=value, running_mean=RM, running_var=RV),
+                 lambda: refnorm.batch_norm_backward(DY, X, training=value, running_mean=RM, running_var=RV),
+                 lambda: refnorm.instance_norm_forward(X, training=value, running_mean=RM, running_var=RV),
+                 lambda: refnorm.instance_norm_backward(DY, X, training=value, running_mean=RM, running_var=RV)):
+        with _raises(r"^training is .*, expected True or False"):
+            call()
+    # NumPy's bool scalar is a bool
+    out = refnorm.batch_norm_forward(X, training=np.bool_(False), running_mean=RM, running_var=RV)
+    np.testing.assert_array_equal(out.y, refnorm.batch_norm_forward(X, training=False, running_mean=RM,
+                                                                    running_var=RV).y)
+
+
+@pytest.mark.parametrize("value", [np.array(["inside"]), b"inside", 1])
+def test_choice_arguments_must_be_strings(value):
+    """An array holding the right string used to pass `value in choices` by elementwise comparison."""
+    with _raises(r"^eps_placement is .*, expected one of 'inside', 'outside'"):
+        refnorm.layer_norm_forward(X, 5, eps_placement=value)
+
+
+def test_bool_is_not_a_number():
+    with _raises(r"^eps is bool True, expected a finite real number >= 0"):
+        refnorm.batch_norm_forward(X, eps=True)
+    with _raises(r"^momentum is bool False, expected a number in \[0, 1\]"):
+        refnorm.running_update(RM, RV, momentum=False)
+    with _raises(r"^batches_seen is bool True, expected an integer >= 0"):
+        refnorm.running_update(RM, RV, momentum=None, batches_seen=True)
+    with _raises(r"^num_groups is bool True, expected a positive integer"):
+        refnorm.group_norm_forward(X, True)
+    with _raises(r"^axes is bool True, expected an integer"):
+        refnorm.layer_norm_forward(X, axes=True)
+
+
+def test_momentum_and_batches_seen_are_checked_even_when_unused():
+    """A bad value is an error even where it would not be read (no running statistics): strict by default."""
+    with _raises(r"^momentum is str '0.1'"):
+        refnorm.batch_norm_forward(X, momentum="0.1")
+    with _raises(r"^batches_seen is float 2.0"):
+        refnorm.instance_norm_forward(X, momentum=None, batches_seen=2.0)
+
+
+def test_negative_running_var_and_nonpositive_saved_rstd():
+    """A negative running variance made 1/sqrt(var + eps) NaN; a saved rstd <= 0 made the implied
+    variance 1/rstd^2 - eps meaningless. Both are refused (NaN still propagates by IEEE 754)."""
+    rv = RV.copy()
+    rv[1] = -0.5
+    for call in (lambda: refnorm.batch_norm_forward(X, training=False, running_mean=RM, running_var=rv),
+                 lambda: refnorm.batch_norm_forward(X, running_mean=RM, running_var=rv),
+                 lambda: refnorm.batch_norm_backward(DY, X, training=False, running_mean=RM, running_var=rv),
+                 lambda: refnorm.instance_norm_forward(X, training=False, running_mean=RM, running_var=rv),
+                 lambda: refnorm.instance_norm_backward(DY, X, training=False, running_mean=RM, running_var=rv)):
+        with _raises(r"^running_var has -0.5 at flat index 1, expected values >= 0: a variance"):
+            call()
+    for rstd in (0.0, -1.0, -np.inf):
+        r = np.ones(3)
+        r[2] = rstd
+        with _raises(rf"^rstd has {rstd!r} at flat index 2, expected values > 0"):
+            refnorm.batch_norm_backward(DY, X, mean=np.zeros(3), rstd=r)
+        with _raises(r"^rstd has .* expected values > 0"):
+            refnorm.layer_norm_backward(DY, X, 5, mean=np.zeros((4, 3)), rstd=np.full((4, 3), rstd))
+        with _raises(r"^rstd has .* expected values > 0"):
+            refnorm.rms_norm_backward(DY, X, 5, rstd=np.full((4, 3), rstd))
+        with _raises(r"^rstd has .* expected values > 0"):
+            refnorm.group_norm_backward(DY, X, 3, mean=np.zeros((4, 3)), rstd=np.full((4, 3), rstd))
+        with _raises(r"^rstd has .* expected values > 0"):
+            refnorm.instance_norm_backward(DY, X, mean=np.zeros((4, 3)), rstd=np.full((4, 3), rstd))
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).nmant <= 52, reason="long double is binary64 on this platform")
+def test_longdouble_is_refused_not_rounded():
+    """np.longdouble (x87 80-bit here: 64-bit significand) does not embed in binary64 (IEEE 754-2019
+    §3.6: p = 53): the upcast would round, against the docstring's promise of an exact upcast."""
+    xl = X.astype(np.longdouble) + np.longdouble(2) ** -60  # bits float64 cannot hold
+    with _raises(r"^x has dtype float128 \(64-bit significand.*wider than float64"):
+        refnorm.layer_norm_forward(xl, 5)
+    with _raises(r"^weight has dtype float128"):
+        refnorm.batch_norm_forward(X, np.ones(3, dtype=np.longdouble))
+    with _raises(r"^eps is .* of dtype float128, which float64 cannot hold exactly"):
+        refnorm.layer_norm_forward(X, 5, eps=np.longdouble(1) / 3)
+
+
+def test_complex_ml_dtypes_format_is_refused():
+    """ml_dtypes.bcomplex32 answers finfo like a real format; the float64 cast drops the imaginary part."""
+    ml_dtypes = pytest.importorskip("ml_dtypes")
+    if not hasattr(ml_dtypes, "bcomplex32"):
+        pytest.skip("this ml_dtypes has no bcomplex32")
+    with _raises(r"^x has dtype bcomplex32, expected a floating-point dtype"):
+        refnorm.layer_norm_forward(X.astype(ml_dtypes.bcomplex32), 5)
+
+
+def test_narrow_formats_still_upcast_exactly():
+    """float16, bfloat16 and float8 embed in binary64 (ml_dtypes docs: every format's values are
+    binary64 values): accepted, and equal to the float64 call on the same values."""
+    ml_dtypes = pytest.importorskip("ml_dtypes")
+    for dt in (np.float16, ml_dtypes.bfloat16, ml_dtypes.float8_e4m3fn, ml_dtypes.float8_e5m2):
+        xn = X.astype(dt)
+        np.testing.assert_array_equal(refnorm.layer_norm_forward(xn, 5).y,
+                                      refnorm.layer_norm_forward(xn.astype(np.float64), 5).y)

@@ -293,6 +293,7 @@ def c_kernel(library: str | Path, op: str, *, prefix: str = "refnorm", dtype: st
                         running="inplace")
             if op == "batch_norm" else Conventions(saved=("mean", "rstd")))
     return Kernel(
-        name=name or f"C {prefix}_{op} ({Path(library).name})", op=op, outputs=("y", "mean", "rstd"),
+        name=name or f"C {prefix}_{op} ({Path(library).name})", op=op,
+        outputs=("y", "mean", "rstd") if "forward" in entries else ("y",),  # without forward the oracle's are given
         dtypes=(dtype,), precision=precision or Precision(storage=dtype), conventions=conv, strided=strided,
         notes=notes or f"C ABI v{ABI_VERSION} through ctypes: {Path(library).name}", **entries)

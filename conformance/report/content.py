@@ -336,12 +336,15 @@ def coverage_gaps(doc: dict[str, Any]) -> Gaps:
         limits.append(f"min_reduction={k['min_reduction']}: shorter training reductions are not checked")
     if not k.get("updates_running", True) and has_running:
         limits.append("updates_running=False: running statistics are not checked")
-    entry = k.get("entry_points", [])
-    unchecked = []
-    if not any(e.startswith("backward") for e in entry):
-        unchecked.append("gradients (no backward entry point)")
-    else:
-        unchecked += [g for g in ("dx", "dweight", "dbias") if g not in k.get("grads", [])]
+    if "unchecked" in k:  # the declaration's own list (conformance.kernel.unchecked_outputs)
+        unchecked = [f"{u['output']} ({'/'.join(u.get('modes', []))}): {u['reason']}" for u in k["unchecked"]]
+    else:  # documents written before the list was recorded
+        entry = k.get("entry_points", [])
+        unchecked = []
+        if not any(e.startswith("backward") for e in entry):
+            unchecked.append("gradients (no backward entry point)")
+        else:
+            unchecked += [g for g in ("dx", "dweight", "dbias") if g not in k.get("grads", [])]
     longest = max((c.group_length for c in ran), default=None) if spec else None
     return Gaps(skipped=skipped,
                 dtypes_undeclared=[d for d in _dtypes.FORMATS if d not in declared],
@@ -432,7 +435,7 @@ def gap_sentences(g: Gaps) -> list[str]:
         s.append("Modes no case ran: " + ", ".join(g.modes_absent) + ".")
     s += [lim[0].upper() + lim[1:] + "." for lim in g.declaration_limits]
     if g.outputs_unchecked:
-        s.append("Not checked: " + ", ".join(g.outputs_unchecked) + ".")
+        s.append("Outputs the declaration leaves unchecked: " + "; ".join(g.outputs_unchecked) + ".")
     if g.longest_reduction is not None:
         s.append(f"Longest reduction run: {g.longest_reduction:,} elements per statistic (tier {g.tier}); "
                  "longer reductions on the target are extrapolation.")
