@@ -132,7 +132,13 @@ def test_kernel_checks_accept_a_minimal_and_a_full_declaration(name):
     def f(**kw):
         return kw["x"]
 
-    Kernel(name="minimal", op=name, forward=f)
+    if spec.running_outputs:
+        # A forward that returns running statistics must list them (conformance.kernel: never unchecked in silence).
+        with pytest.raises(KernelError, match="they would go unchecked"):
+            Kernel(name="minimal", op=name, forward=f)
+        Kernel(name="minimal", op=name, forward=f, updates_running=False)
+    else:
+        Kernel(name="minimal", op=name, forward=f)
     full = Kernel(name="full", op=name, outputs=("y",) + spec.saved + spec.running_outputs,
                   conventions=Conventions(saved=spec.saved), **{e: f for e in spec.entry_points})
     assert full.entry_points == spec.entry_points
