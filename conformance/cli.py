@@ -1,8 +1,9 @@
 """The command line: `refnorm check`, `refnorm cases`.
 
 Exit codes: 0 conformant; 1 not conformant; 2 bad usage, a bad kernel spec or a
-kernel that cannot load; 3 interrupted (a partial results file is still written,
-marked incomplete).
+kernel that cannot load; 3 interrupted by SIGINT, SIGTERM or SIGHUP, or results
+that do not cover the selected cases (a partial results file is still written,
+marked incomplete; the workers and whatever their kernels started are killed).
 """
 
 from __future__ import annotations
@@ -121,6 +122,7 @@ def run_options(args: argparse.Namespace, kernel: Kernel, argv: Sequence[str]):
 
 
 def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from . import stop
     from .results import write_json_atomic
     from .run import run_check
     from .summary import summary_table, verdict_lines
@@ -131,20 +133,24 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
         doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
-    for ext in _extensions():
-        if hasattr(ext, "amend"):
-            doc = ext.amend(args, doc)
-    print(summary_table(doc))
-    print()
-    for line in verdict_lines(doc):
-        print(line)
-    if args.json:
-        path = write_json_atomic(args.json, doc)
-        print(f"results: {path}")
+    with stop.holding():  # a signal from here on is held until the results are written
+        for ext in _extensions():
+            if hasattr(ext, "amend"):
+                doc = ext.amend(args, doc)
+        print(summary_table(doc))
+        print()
+        for line in verdict_lines(doc):
+            print(line)
+        if args.json:
+            path = write_json_atomic(args.json, doc)
+            print(f"results: {path}")
     for ext in _extensions():
         if hasattr(ext, "emit"):
             ext.emit(args, doc)
-    if not doc["complete"]:
+    if not doc["complete"] or stop.requested():
+        if doc["complete"]:
+            print(f"refnorm: interrupted by {stop.requested()} after the run; its results are complete",
+                  file=sys.stderr)
         return EXIT_INTERRUPTED
     return EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
 
@@ -158,20 +164,29 @@ def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from .stop import handle_stops
+
     argv = list(sys.argv[1:] if argv is None else argv)
-    parser = build_parser()
-    try:
-        args = parser.parse_args(argv)
-    except SystemExit as e:  # argparse's own usage errors exit with 2 already
-        return int(e.code or 0)
-    try:
-        return args.func(args, argv)
-    except (UsageError, KernelError) as e:
-        print(f"refnorm: error: {e}", file=sys.stderr)
-        return EXIT_USAGE
-    except KeyboardInterrupt:
-        print("refnorm: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
+    with handle_stops():  # SIGTERM and SIGHUP stop a command as Ctrl-C does (conformance.stop)
+        try:
+            parser = build_parser()
+            try:
+                args = parser.parse_args(argv)
+            except SystemExit as e:  # argparse's own usage errors exit with 2 already
+                return int(e.code or 0)
+            return args.func(args, argv)
+        except (UsageError, KernelError) as e:
+            print(f"refnorm: error: {e}", file=sys.stderr)
+            return EXIT_USAGE
+        except KeyboardInterrupt as e:
+            return interrupted(e)
+
+
+def interrupted(e: BaseException | None = None) -> int:
+    """Say that the command was stopped, in one line; the exit code for it."""
+    name = getattr(e, "signal", None)
+    print(f"refnorm: interrupted{f' by {name}' if name else ''}", file=sys.stderr)
+    return EXIT_INTERRUPTED
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -51,6 +51,18 @@ def emit(args: argparse.Namespace, doc: dict[str, Any]) -> None:
     quiet = getattr(args, "quiet", False)
     peers, note = gather_peers(doc, args.peers, quiet=quiet, stream=None if quiet else sys.stderr)
     _print_paths(write_report(doc, args.report, peers=peers, peers_note=note))
+    if _peers_interrupted(peers):
+        from .. import stop
+
+        if not stop.requested():  # under the command line's handlers the check already exits 3
+            raise KeyboardInterrupt
+
+
+def _peers_interrupted(peers: dict[str, Any] | None) -> bool:
+    if peers and peers.get("interrupted"):
+        print("refnorm: the reference libraries' runs were interrupted; the report says which ran", file=sys.stderr)
+        return True
+    return False
 
 
 def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
@@ -70,4 +82,8 @@ def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
     peers, note = gather_peers(doc, args.peers, stored=stored, quiet=args.quiet,
                                stream=None if args.quiet else sys.stderr)
     _print_paths(write_report(doc, out, peers=peers, peers_note=note))
+    if _peers_interrupted(peers):
+        from ..cli import EXIT_INTERRUPTED
+
+        return EXIT_INTERRUPTED
     return EXIT_OK
