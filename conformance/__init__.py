@@ -5,15 +5,18 @@ Passing is evidence on the cases run, not a proof of correctness; sign-off on
 hardware remains the reviewer's responsibility.
 """
 
-from .kernel import Conventions, Kernel, KernelError, Precision, load_kernel
-
 __all__ = ["Kernel", "Precision", "Conventions", "KernelError", "load_kernel", "run_check", "RunOptions"]
 
 
 def __getattr__(name):
-    # The runner pulls in the tolerances and comparison modules: load them on first use.
+    # Nothing heavy at import: the `refnorm` command installs its signal handlers before NumPy loads
+    # (conformance.__main__), and the runner pulls in the tolerances and comparison modules.
+    if name in ("Kernel", "Precision", "Conventions", "KernelError", "load_kernel"):
+        from . import kernel
+
+        return getattr(kernel, name)
     if name in ("run_check", "RunOptions"):
         from . import run
 
         return getattr(run, name)
-    raise AttributeError(name)
+    raise AttributeError(f"module 'conformance' has no attribute {name!r}")

@@ -3,7 +3,9 @@
 Exit codes: 0 conformant; 1 not conformant; 2 bad usage (an option out of its limits, an
 output path that cannot be written, a bad kernel spec or a kernel that cannot load: all
 found before the first case runs; or an artefact that could not be written after the run);
-3 interrupted (a partial results file is still written, marked incomplete).
+3 interrupted by SIGINT, SIGTERM or SIGHUP, or results that do not cover the selected cases
+(a partial results file is still written, marked incomplete; the workers and whatever their
+kernels started are killed).
 
 Artefacts are written before anything is printed, and a closed stdout (`... | head -1`)
 changes neither the exit code nor the files.
@@ -147,6 +149,7 @@ def _prepare(args: argparse.Namespace) -> None:
 
 
 def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from . import stop
     from .results import write_json_atomic
     from .run import run_check
     from .summary import summary_table, verdict_lines
@@ -169,17 +172,18 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
         doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
-    for ext in exts:
-        if hasattr(ext, "amend"):
-            doc = ext.amend(args, doc)
-    # Artefacts first: nothing printed (to a closed pipe, say) can cost a file.
-    written: list[str] = []
-    unwritten: list[str] = []
-    if args.json:
-        try:
-            written.append(f"results: {write_json_atomic(args.json, doc)}")
-        except OSError as e:
-            unwritten.append(f"--json {args.json}: {e.strerror or e}")
+    with stop.holding():  # a signal from here on is held until the results are written
+        for ext in exts:
+            if hasattr(ext, "amend"):
+                doc = ext.amend(args, doc)
+        # Artefacts first: nothing printed (to a closed pipe, say) can cost a file.
+        written: list[str] = []
+        unwritten: list[str] = []
+        if args.json:
+            try:
+                written.append(f"results: {write_json_atomic(args.json, doc)}")
+            except OSError as e:
+                unwritten.append(f"--json {args.json}: {e.strerror or e}")
     for ext in exts:
         if hasattr(ext, "emit"):
             try:
@@ -198,7 +202,10 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
         print(line)
     for line in unwritten:
         print(f"refnorm: error: could not write {line}", file=sys.stderr)
-    if not doc["complete"]:
+    if not doc["complete"] or stop.requested():
+        if doc["complete"]:
+            print(f"refnorm: interrupted by {stop.requested()} after the run; its results are complete",
+                  file=sys.stderr)
         return EXIT_INTERRUPTED
     if unwritten:
         return EXIT_USAGE
@@ -271,20 +278,29 @@ def _closed_stdout_safe(func, args: argparse.Namespace, argv: Sequence[str]) -> 
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from .stop import handle_stops
+
     argv = list(sys.argv[1:] if argv is None else argv)
-    parser = build_parser()
-    try:
-        args = parser.parse_args(argv)
-    except SystemExit as e:  # argparse's own usage errors exit with 2 already
-        return int(e.code or 0)
-    try:
-        return _closed_stdout_safe(args.func, args, argv)
-    except (UsageError, KernelError) as e:
-        print(f"refnorm: error: {e}", file=sys.stderr)
-        return EXIT_USAGE
-    except KeyboardInterrupt:
-        print("refnorm: interrupted", file=sys.stderr)
-        return EXIT_INTERRUPTED
+    with handle_stops():  # SIGTERM and SIGHUP stop a command as Ctrl-C does (conformance.stop)
+        try:
+            parser = build_parser()
+            try:
+                args = parser.parse_args(argv)
+            except SystemExit as e:  # argparse's own usage errors exit with 2 already
+                return int(e.code or 0)
+            return _closed_stdout_safe(args.func, args, argv)
+        except (UsageError, KernelError) as e:
+            print(f"refnorm: error: {e}", file=sys.stderr)
+            return EXIT_USAGE
+        except KeyboardInterrupt as e:
+            return interrupted(e)
+
+
+def interrupted(e: BaseException | None = None) -> int:
+    """Say that the command was stopped, in one line; the exit code for it."""
+    name = getattr(e, "signal", None)
+    print(f"refnorm: interrupted{f' by {name}' if name else ''}", file=sys.stderr)
+    return EXIT_INTERRUPTED
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -20,6 +20,9 @@ SCHEMA = "refnorm.results"
 SCHEMA_VERSION = 1
 STATUSES = ("passed", "failed", "crashed", "timed_out", "error", "skipped")
 BAD = ("failed", "crashed", "timed_out", "error")
+#: The longest case message kept, in characters; a longer one keeps its start and its end and says how
+#: much was cut between them (a kernel's exception text can be megabytes).
+MESSAGE_LIMIT = 8000
 
 CAUTION = (
     "Passing is evidence on the cases run, not a proof of correctness: a kernel can be wrong on "
@@ -43,6 +46,10 @@ class CaseResult:
     oracle_s: float = 0.0
     modified_inputs: list[str] = field(default_factory=list)
 
+    def __post_init__(self) -> None:
+        if isinstance(self.message, str) and len(self.message) > MESSAGE_LIMIT:
+            self.message = cap_text(self.message)
+
     @property
     def worst_budget(self) -> float:
         vals = [o.get("budget_used", 0.0) for o in self.outputs]
@@ -54,6 +61,18 @@ class CaseResult:
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "CaseResult":
         return cls(**{k: d[k] for k in cls.__dataclass_fields__ if k in d})
+
+
+def cap_text(text: str, limit: int = MESSAGE_LIMIT) -> str:
+    """``text`` if it has at most ``limit`` characters; else its start and end around a note of how
+    many characters were cut (the result has at most ``limit`` characters)."""
+    if len(text) <= limit:
+        return text
+    keep = max(0, limit - 64)  # room for the note
+    head = keep * 3 // 4
+    tail = keep - head
+    note = f"\n[... {len(text) - keep:,} characters cut ...]\n"
+    return text[:head] + note + (text[len(text) - tail:] if tail else "")
 
 
 def _jsonable(o: Any) -> Any:
@@ -176,14 +195,34 @@ def now_iso() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
+def coverage(cases: list[CaseResult], selected: list[str]) -> dict[str, Any]:
+    """How the results cover the selected case ids: the ids with no result, with more than one,
+    and results for ids not selected. Exact coverage has all three lists empty."""
+    seen: dict[str, int] = {}
+    for c in cases:
+        seen[c.id] = seen.get(c.id, 0) + 1
+    chosen = set(selected)
+    return {"selected": len(selected), "missing": [i for i in selected if i not in seen],
+            "duplicated": [i for i, n in seen.items() if n > 1], "unexpected": [i for i in seen if i not in chosen]}
+
+
 def build_document(kernel_decl: dict[str, Any], run: dict[str, Any], cases: list[CaseResult],
-                   complete: bool, env: dict[str, Any] | None = None) -> dict[str, Any]:
-    """The results document (see docs/results-schema.json)."""
+                   complete: bool, env: dict[str, Any] | None = None,
+                   selected: list[str] | None = None) -> dict[str, Any]:
+    """The results document (see docs/results-schema.json).
+
+    With ``selected`` (the case ids the run chose), the document records its ``coverage``, and
+    results that do not cover each selected case exactly once make it incomplete: never conformant.
+    """
+    cov = coverage(cases, selected) if selected is not None else None
+    if cov and (cov["missing"] or cov["duplicated"] or cov["unexpected"]):
+        complete = False
     return _jsonable({
         "schema": SCHEMA,
         "schema_version": SCHEMA_VERSION,
         "complete": complete,
         "verdict": verdict(cases, complete),
+        **({"coverage": cov} if cov is not None else {}),
         "kernel": kernel_decl,
         "environment": env or environment(),
         "run": run,

@@ -53,6 +53,29 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     names = unchecked_names(doc)
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
-    lines = [first, *unchecked_lines(doc)]
+    lines = [first, *unchecked_lines(doc), *incomplete_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
+
+
+def incomplete_lines(doc: dict[str, Any], shown: int = 5) -> list[str]:
+    """Why a document is incomplete: the signal that stopped it, and results that do not cover the
+    selected cases exactly once (up to ``shown`` ids of each kind)."""
+    def ids(xs: list[str]) -> str:
+        more = f" and {len(xs) - shown} more" if len(xs) > shown else ""
+        return ", ".join(xs[:shown]) + more
+
+    out = []
+    why = (doc.get("run") or {}).get("interrupted")
+    cov = doc.get("coverage") or {}
+    missing = cov.get("missing") or []
+    if why:
+        out.append(f"interrupted by {why}: {len(missing)} of {cov.get('selected', '?')} selected case(s) have no "
+                   "result")
+    elif missing:
+        out.append(f"incomplete: no result for {len(missing)} selected case(s): {ids(missing)}")
+    if cov.get("duplicated"):
+        out.append(f"incomplete: more than one result for {ids(cov['duplicated'])}")
+    if cov.get("unexpected"):
+        out.append(f"incomplete: results for cases that were not selected: {ids(cov['unexpected'])}")
+    return out

@@ -215,10 +215,10 @@ def result_name(kernel_name: str, taken: set[str]) -> str:
 
 
 def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    from .. import cli
+    from .. import cli, stop
     from ..results import write_json_atomic
     from ..run import run_check
-    from ..summary import summary_table, verdict_lines
+    from ..summary import incomplete_lines, summary_table, verdict_lines
     from .decide import GATE_CAUTION, apply_gate, gate_lines
     from .plan import PlanError, plan_runs
     from .waivers import waiver_summary
@@ -262,56 +262,65 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
         baselines.append((bl_path, _load_doc(str(bl_path), "baseline") if bl_path else None))
     docs, uses, unwritten = [], [], []
     interrupted = False
-    for plan, name, (bl_path, baseline) in zip(plans, names, baselines):
-        print(f"== {plan.kernel.name} ({plan.spec}): {plan.kernel.op}, {', '.join(plan.dtypes)}, {plan.tier} tier, "
-              f"seed {plan.seed}", flush=True)
-        doc = run_check(plan.kernel, plan.run_options(command), spec=plan.load_spec, quiet=args.quiet)
-        doc, u = apply_gate(doc, waivers=plan.waivers, baseline=baseline,
-                            baseline_path=str(bl_path) if bl_path else None, growth=plan.growth,
-                            growth_floor=plan.growth_floor, profile=str(path) if path else None)
-        uses += u
-        docs.append(doc)
-        written = None
-        if json_dir is not None:  # the file first, then the lines
-            try:
-                written = write_json_atomic(json_dir / f"{name}.json", doc)
-            except OSError as e:
-                unwritten.append(f"--json-dir {json_dir / f'{name}.json'}: {e.strerror or e}")
-        print(summary_table(doc))
-        print()
-        for line in verdict_lines(doc)[:1] + gate_lines(doc, stale=False)[:-1]:
-            print(line)
-        if written is not None:
-            print(f"results: {written}")
-        print()
-        if not doc["complete"]:
-            interrupted = True
-            break
-    junit_line = None
-    if junit is not None:
-        from .junit import write_junit
+    with stop.holding():  # a signal stops the gate between kernels; the pool of a running kernel raises it
+        for plan, name, (bl_path, baseline) in zip(plans, names, baselines):
+            if stop.requested():
+                interrupted = True
+                break
+            print(f"== {plan.kernel.name} ({plan.spec}): {plan.kernel.op}, {', '.join(plan.dtypes)}, {plan.tier} "
+                  f"tier, seed {plan.seed}", flush=True)
+            doc = run_check(plan.kernel, plan.run_options(command), spec=plan.load_spec, quiet=args.quiet)
+            doc, u = apply_gate(doc, waivers=plan.waivers, baseline=baseline,
+                                baseline_path=str(bl_path) if bl_path else None, growth=plan.growth,
+                                growth_floor=plan.growth_floor, profile=str(path) if path else None)
+            uses += u
+            docs.append(doc)
+            written = None
+            if json_dir is not None:  # the file first, then the lines
+                try:
+                    written = write_json_atomic(json_dir / f"{name}.json", doc)
+                except OSError as e:
+                    unwritten.append(f"--json-dir {json_dir / f'{name}.json'}: {e.strerror or e}")
+            print(summary_table(doc))
+            print()
+            for line in verdict_lines(doc)[:1] + incomplete_lines(doc) + gate_lines(doc, stale=False)[:-1]:
+                print(line)
+            if written is not None:
+                print(f"results: {written}")
+            print()
+            if not doc["complete"] or stop.requested():
+                interrupted = True
+                break
+        junit_line = None
+        if junit is not None:
+            from .junit import write_junit
 
-        try:
-            junit_line = f"junit: {write_junit(junit, docs)}"
-        except OSError as e:
-            unwritten.append(f"--junit {junit}: {e.strerror or e}")
-    waivers = prof.waivers if prof else ()
-    ws = waiver_summary(waivers, uses)
-    for w in ws["stale"]:
-        print(f"warning: stale waiver #{w['index']} (case {w['case']!r}"
-              f"{' output ' + w['output'] if w.get('output') else ''}): matches cases but no failure: remove it")
-    for w in ws["unmatched"]:
-        print(f"warning: waiver #{w['index']} (case {w['case']!r}) matches no case of any kernel checked: "
-              "remove it or fix its pattern")
-    if junit_line:
-        print(junit_line)
-    failed = [d["kernel"]["name"] for d in docs if d["gate"]["verdict"] != "pass"]
-    verdict = "FAIL" if failed or interrupted else "PASS"
-    print(f"gate: {verdict}: {len(docs) - len(failed)} of {len(plans)} kernel(s) pass"
-          + (f"; failing: {', '.join(failed)}" if failed else "") + (" (interrupted)" if interrupted else ""))
-    print("note: " + GATE_CAUTION)
-    for line in unwritten:
-        print(f"refnorm: error: could not write {line}", file=sys.stderr)
+            try:
+                junit_line = f"junit: {write_junit(junit, docs)}"
+            except OSError as e:
+                unwritten.append(f"--junit {junit}: {e.strerror or e}")
+        waivers = prof.waivers if prof else ()
+        ws = waiver_summary(waivers, uses)
+        for w in ws["stale"]:
+            print(f"warning: stale waiver #{w['index']} (case {w['case']!r}"
+                  f"{' output ' + w['output'] if w.get('output') else ''}): matches cases but no failure: remove it")
+        for w in ws["unmatched"]:
+            print(f"warning: waiver #{w['index']} (case {w['case']!r}) matches no case of any kernel checked: "
+                  "remove it or fix its pattern")
+        if junit_line:
+            print(junit_line)
+        failed = [d["kernel"]["name"] for d in docs if d["gate"]["verdict"] != "pass"]
+        verdict = "FAIL" if failed or interrupted else "PASS"
+        stopped = ""
+        if interrupted:
+            by = stop.requested() or next((d["run"].get("interrupted") for d in docs if d["run"].get("interrupted")),
+                                          None)
+            stopped = f" (interrupted{f' by {by}' if by else ''}; {len(plans) - len(docs)} kernel(s) not run)"
+        print(f"gate: {verdict}: {len(docs) - len(failed)} of {len(plans)} kernel(s) pass"
+              + (f"; failing: {', '.join(failed)}" if failed else "") + stopped)
+        print("note: " + GATE_CAUTION)
+        for line in unwritten:
+            print(f"refnorm: error: could not write {line}", file=sys.stderr)
     if interrupted:
         return cli.EXIT_INTERRUPTED
     if unwritten:

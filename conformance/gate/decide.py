@@ -74,7 +74,10 @@ def apply_gate(doc: dict[str, Any], *, waivers: Sequence[Waiver] = (), today: da
     ws = waiver_summary(waivers, uses)
     reasons = []
     if not doc.get("complete", True):
-        reasons.append("the run is incomplete (interrupted)")
+        why = (doc.get("run") or {}).get("interrupted")
+        reasons.append(f"the run is incomplete (interrupted by {why})" if why else
+                       "the run is incomplete (interrupted, or its results do not cover the selected cases "
+                       "exactly once)")
     if outcomes["failed"] or outcomes["error"]:
         reasons.append(f"{outcomes['failed']} case(s) failed and {outcomes['error']} crashed, timed out or "
                        "raised, not waived")

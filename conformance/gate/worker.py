@@ -2,13 +2,19 @@
 
 conformance.run.pool.WorkerPool starts its workers at the beginning of ``run`` and
 stops them at its end; a pytest item asks for one case at a time, so this keeps a
-single worker of such a pool between calls. A crash or a timeout costs the case it
-happened in, and a fresh worker takes over for the next one, as in the pool.
+single worker of such a pool between calls. A crash, a timeout or a protocol error
+costs the case it happened in, and a fresh worker takes over for the next one, as in
+the pool; ``close()`` stops the worker and kills its process group (what its kernel
+started included).
+
+Each reply is confirmed before ``run_one`` returns (see the pool's protocol), so a
+second reply to a case is caught while that case is still being reported. A stray
+reply to an earlier case (already reported) is named in the case during which it
+arrives, which is then crashed.
 """
 
 from __future__ import annotations
 
-import time
 from multiprocessing.connection import wait
 
 from ..cases.model import Case
@@ -29,32 +35,20 @@ class KeptWorker(WorkerPool):
     def run_one(self, case: Case) -> CaseResult:
         if not self._pool:
             self._pool = [self._start()]
+        self._dispatch(0, case)
         w = self._pool[0]
-        w.case, w.started = case, time.monotonic()
-        try:
-            w.conn.send(case.as_dict())
-        except (OSError, BrokenPipeError):  # the worker died between cases: give the case a fresh one
-            self._stop(w, kill=True)
-            w = self._pool[0] = self._start()
-            w.case, w.started = case, time.monotonic()
-            w.conn.send(case.as_dict())
-        ready = wait([w.conn, w.proc.sentinel], timeout=self.timeout)
-        if ready:
-            res = self._collect(w)
+        if wait([w.conn, w.exit_fd], timeout=self.timeout):
+            res, usable = self._answer(w)
         else:
-            res = CaseResult(id=case.id, case=case.as_dict(), status="timed_out",
-                             message=f"no answer within the per-case timeout of {self.timeout:g} s; "
-                                     "the worker was killed", duration_s=self.timeout)
-            self._stop(w, kill=True)
-            self._pool = []
-            return res
-        if res.status == "crashed":  # _collect has stopped the dead worker
-            self._pool = []
-        else:
+            res, usable = self._timed_out(w), False
+        self._late.clear()  # an earlier item is already reported; _answer named it in this case's message
+        if usable:
             w.case = None
+        else:
+            self._pool = []
         return res
 
     def close(self) -> None:
-        for w in self._pool:
+        for w in list(self._live):
             self._stop(w, kill=w.case is not None)
         self._pool = []

@@ -79,7 +79,20 @@ def emit(args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
         return []
     quiet = getattr(args, "quiet", False)
     peers, note = gather_peers(doc, args.peers, quiet=quiet, stream=None if quiet else sys.stderr)
-    return _report_lines(write_report(doc, args.report, peers=peers, peers_note=note))
+    lines = _report_lines(write_report(doc, args.report, peers=peers, peers_note=note))
+    if _peers_interrupted(peers):
+        from .. import stop
+
+        if not stop.requested():  # under the command line's handlers the check already exits 3
+            raise KeyboardInterrupt
+    return lines
+
+
+def _peers_interrupted(peers: dict[str, Any] | None) -> bool:
+    if peers and peers.get("interrupted"):
+        print("refnorm: the reference libraries' runs were interrupted; the report says which ran", file=sys.stderr)
+        return True
+    return False
 
 
 def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
@@ -101,4 +114,8 @@ def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
                                stream=None if args.quiet else sys.stderr)
     for line in _report_lines(write_report(doc, out, peers=peers, peers_note=note)):
         print(line)
+    if _peers_interrupted(peers):
+        from ..cli import EXIT_INTERRUPTED
+
+        return EXIT_INTERRUPTED
     return EXIT_OK

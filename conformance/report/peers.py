@@ -8,7 +8,10 @@ bias and running statistics are rounded to each kernel's own params dtype.
 
 The peers document (``peers.json`` beside the report) records, per library,
 whether it ran, why not when it did not, its versions, and its full results
-document, so that a report can be re-rendered without running it again.
+document, so that a report can be re-rendered without running it again. Ctrl-C (or
+SIGTERM) during a library's run stops the peers there: the document says
+``interrupted``, the libraries not reached are "skipped" with that reason, the report
+shows it, and `refnorm check --report` exits 3; an interrupted peers file is never reused.
 """
 
 from __future__ import annotations
@@ -184,14 +187,27 @@ def _run_one(lib: Library, doc: dict[str, Any], quiet: bool, stream: TextIO | No
                   runs=runs, **extra)
 
 
-def run_peers(doc: dict[str, Any], libraries: Iterable[Library] = LIBRARIES, *, quiet: bool = True,
+def run_peers(doc: dict[str, Any], libraries: Iterable[Library] | None = None, *, quiet: bool = True,
               stream: TextIO | None = None) -> dict[str, Any]:
-    """Run each library's adapter over the cases ``doc`` ran, with its seed; return the peers document."""
+    """Run each library's adapter (default: LIBRARIES, read at the call) over the cases ``doc`` ran, with its
+    seed; return the peers document."""
+    from .. import stop
+
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")  # before any worker imports TensorFlow
     os.environ.setdefault("KERAS_BACKEND", "tensorflow")
+    entries: list[dict[str, Any]] = []
+    interrupted = False
+    for lib in LIBRARIES if libraries is None else libraries:
+        # Ctrl-C (or SIGTERM) during one library's run ends the peers: the libraries after it are not run.
+        if interrupted or stop.requested():
+            interrupted = True
+            entries.append(_entry(lib, "skipped", "not run: the command was interrupted"))
+            continue
+        entries.append(_run_one(lib, doc, quiet, stream))
+        interrupted = entries[-1]["status"] == "incomplete"
     return {"schema": PEERS_SCHEMA, "schema_version": PEERS_VERSION, "op": doc["kernel"]["op"],
             "seed": doc.get("run", {}).get("seed", 0), "case_ids": [c["id"] for c in _cases_run(doc)],
-            "libraries": [_run_one(lib, doc, quiet, stream) for lib in libraries]}
+            "interrupted": interrupted, "libraries": entries}
 
 
 def write_peers(path: str | os.PathLike, peers: dict[str, Any]) -> Path:
@@ -210,6 +226,8 @@ def load_peers(path: str | os.PathLike, doc: dict[str, Any]) -> tuple[dict[str, 
         peers = json.load(f)
     if peers.get("schema") != PEERS_SCHEMA or peers.get("schema_version") != PEERS_VERSION:
         return None, f"{p}: not a refnorm peers file of version {PEERS_VERSION}"
+    if peers.get("interrupted"):
+        return None, f"{p} holds an interrupted run of the libraries"
     want = [c["id"] for c in _cases_run(doc)]
     if (peers.get("op") != doc["kernel"]["op"] or peers.get("seed") != doc.get("run", {}).get("seed", 0)
             or peers.get("case_ids") != want):

@@ -1,6 +1,8 @@
 """One case, end to end: make inputs, call the kernel, call the oracle, derive bounds, compare.
 
 Runs inside a worker process, so that a kernel that crashes or hangs costs its case only.
+Every call of a kernel entry point goes through conformance.run.isolation.call_kernel
+(floating-point state restored, forked copies of the worker caught).
 """
 
 from __future__ import annotations
@@ -17,10 +19,11 @@ from ..cases.generators import make_inputs
 from ..cases.model import Case
 from ..compare import compare_output
 from ..kernel import Kernel, call_with
-from ..results import CaseResult
+from ..results import CaseResult, cap_text
 from ..tolerances import derive_bounds, output_dtype, override_bound
+from .isolation import ForkedCopy, call_kernel
 
-__all__ = ["execute_case", "skip_reason", "KernelCallError"]
+__all__ = ["execute_case", "skip_reason", "KernelCallError", "describe_exception"]
 
 
 class KernelCallError(Exception):
@@ -57,6 +60,10 @@ def _named(result: Any, names: tuple[str, ...], entry: str) -> dict[str, Any]:
         if missing:
             raise KernelCallError(f"{entry} returned a dict without {missing} (declared {list(names)})")
         return {n: result[n] for n in names}
+    if isinstance(result, list) and (len(names) == 1 or entry == "forward_eval"):
+        # One declared output: a list is neither an array (it has no dtype) nor a sequence of outputs.
+        raise KernelCallError(f"{entry} returned a list for its one declared output {names[0]}: return an array "
+                              "in the kernel's dtype (a tuple or dict is read as several outputs)")
     if isinstance(result, (tuple, list)):
         if len(result) != len(names):
             raise KernelCallError(f"{entry} returned {len(result)} values, declared {len(names)}: {list(names)}")
@@ -66,12 +73,26 @@ def _named(result: Any, names: tuple[str, ...], entry: str) -> dict[str, Any]:
     raise KernelCallError(f"{entry} returned one {type(result).__name__}, declared {len(names)} outputs: {list(names)}")
 
 
+#: Characters of a kernel's exception text kept in a case's message (the rest is cut, and the cut said).
+EXCEPTION_TEXT_LIMIT = 2000
+
+
+def describe_exception(e: BaseException, frames: int = 4) -> str:
+    """``Type: text`` (text capped at EXCEPTION_TEXT_LIMIT) and the innermost ``frames`` stack frames,
+    the text written once."""
+    tb = "".join(traceback.format_tb(e.__traceback__, limit=-frames)) if e.__traceback__ else ""
+    return (f"{type(e).__name__}: {cap_text(str(e), EXCEPTION_TEXT_LIMIT)}"
+            + (f"\nTraceback (innermost {frames} frames):\n{tb.rstrip()}" if tb else ""))
+
+
 def _call(kernel: Kernel, entry: str, kwargs: dict[str, Any]) -> Any:
+    fn = getattr(kernel, entry)
     try:
-        return call_with(getattr(kernel, entry), kwargs)
+        return call_kernel(lambda: call_with(fn, kwargs))
+    except ForkedCopy:
+        raise
     except Exception as e:  # the kernel's own failure, not the harness's
-        tb = traceback.format_exc(limit=4)
-        raise KernelCallError(f"{entry} raised {type(e).__name__}: {e}\n{tb}") from e
+        raise KernelCallError(f"{entry} raised {describe_exception(e)}") from e
 
 
 def _snapshot(inp: dict[str, Any]) -> dict[str, np.ndarray]:
@@ -162,6 +183,9 @@ def _execute(kernel: Kernel, case: Case, seed: int,
         raw, modified = _kernel_outputs(kernel, case, inp, fwd)
     except KernelCallError as e:
         return CaseResult(id=case.id, case=case.as_dict(), status="error", message=str(e),
+                          duration_s=time.perf_counter() - t0)
+    except ForkedCopy as e:  # a protocol error of the kernel's making: the worker is replaced after it
+        return CaseResult(id=case.id, case=case.as_dict(), status="crashed", message=f"protocol error: {e}",
                           duration_s=time.perf_counter() - t0)
     kernel_s = time.perf_counter() - t_k
 

@@ -6,6 +6,22 @@ its case status "crashed" with the signal or exit code; one that passes the
 deadline is killed and its case gets "timed out". Either way a fresh worker
 takes its place.
 
+The protocol. The parent sends ``("case", token, case)`` with a fresh random token; the
+worker answers ``("result", token, pid, result)``; the parent then sends ``("sync", token2)``
+and the worker answers ``("synced", token2, pid)``. A worker answers in order, so anything
+that arrives between its result and its confirmation is a second reply. A reply that cannot
+be read, that carries another token, another process id or another case id, that comes
+twice, or a worker that dies before confirming its reply, is a protocol error: the case is
+"crashed" with a message that begins "protocol error", and the worker is stopped with its
+whole process group and replaced. A second reply to a case already delivered is reported
+as a crashed replacement result for that case (``on_result`` is called again with its id).
+
+Process hygiene (conformance.run.isolation): each worker leads its own process group,
+which holds whatever its kernel starts; stopping a worker (end of the run, crash, timeout,
+protocol error, Ctrl-C) kills that group, and a worker dies with the run process even when
+that is killed with SIGKILL. Worker deaths are watched through a pidfd on Linux (the
+multiprocessing sentinel stays open while any child of the worker lives).
+
 Workers start with "spawn" when the kernel can be re-loaded from its spec
 (no state inherited from the parent, safe with threaded libraries), and with
 "fork" when the kernel exists only as an object in this process.
@@ -15,6 +31,7 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import secrets
 import signal
 import time
 from dataclasses import dataclass, field
@@ -23,32 +40,37 @@ from typing import Any, Callable, Iterable, Mapping
 
 from ..cases.model import Case
 from ..kernel import Kernel, load_kernel
-from ..results import CaseResult
+from ..results import STATUSES, CaseResult, cap_text
+from . import isolation
 
 __all__ = ["WorkerPool"]
 
 #: Seconds a worker may take to import and load the kernel before its first case.
 _STARTUP_TIMEOUT = 600.0
+#: Seconds a worker may take to confirm its reply (it answers at once; this only bounds a broken one).
+_CONFIRM_TIMEOUT = 30.0
+#: Seconds a stopped worker may take to exit before its group is killed.
+_STOP_WAIT = 5.0
 
 
 def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed: int,
-                 overrides: Mapping[str, tuple[float, float]] | None) -> None:
-    # Ctrl-C goes to the parent, which ends the workers itself.
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
+                 overrides: Mapping[str, tuple[float, float]] | None, parent_pid: int) -> None:
+    grouped = isolation.enter_worker(parent_pid)
     # The parent reports a crash by its signal; a Python stack dump from here would only be noise.
     import faulthandler
 
     faulthandler.disable()
-    from .execute import execute_case
+    from .execute import describe_exception, execute_case
 
     if kernel is None:
         try:
             kernel = load_kernel(spec)
         except Exception as e:  # the parent loaded it once; say why it failed here
-            conn.send(("load_error", f"{type(e).__name__}: {e}"))
+            conn.send(("load_error", cap_text(f"{type(e).__name__}: {e}")))
             return
+    me = os.getpid()
     # Tell the parent this worker is ready, so that start-up (imports) never counts against a case's timeout.
-    conn.send(("ready", os.getpid()))
+    conn.send(("ready", me, grouped))
     while True:
         try:
             msg = conn.recv()
@@ -56,23 +78,52 @@ def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed
             return
         if msg is None:
             return
-        case = Case.from_dict(msg)
+        tag, token, body = msg
+        if tag == "sync":
+            conn.send(("synced", token, me))
+            continue
+        case = Case.from_dict(body)
         try:
             res = execute_case(kernel, case, seed, overrides)
         except Exception as e:  # a harness bug must not take the run down either
-            import traceback
-
             res = CaseResult(id=case.id, case=case.as_dict(), status="error",
-                             message=f"harness error: {type(e).__name__}: {e}\n{traceback.format_exc(limit=6)}")
-        conn.send(res.to_dict())
+                             message=f"harness error: {describe_exception(e, frames=6)}")
+        if os.getpid() != me:  # a forked copy that got past the kernel call's guard: only the worker answers
+            os._exit(0)
+        _reply(conn, token, me, res)
+
+
+def _reply(conn: Connection, token: str, pid: int, res: CaseResult) -> None:
+    conn.send(("result", token, pid, res.to_dict()))
+
+
+def _pidfd(pid: int) -> int | None:
+    try:
+        return os.pidfd_open(pid)
+    except (AttributeError, OSError):
+        return None
+
+
+def _brief(msg: Any) -> str:
+    return cap_text(repr(msg), 200)
 
 
 @dataclass
 class _Worker:
     proc: Any
     conn: Connection
+    pid: int
+    exit_fd: Any  # readable once the worker has exited (not reaped): a pidfd, else the sentinel
+    pidfd: int | None = None
     case: Case | None = None
     started: float = 0.0
+    token: str = ""
+    answered: dict[str, Case] = field(default_factory=dict)  # tokens of earlier requests
+    reaped: bool = False
+
+
+class _Protocol(Exception):
+    """A reply that breaks the protocol; the message says how."""
 
 
 @dataclass
@@ -87,6 +138,8 @@ class WorkerPool:
     overrides: Mapping[str, tuple[float, float]] | None = None
     _ctx: Any = field(init=False, default=None)
     _pool: list[_Worker] = field(init=False, default_factory=list)
+    _live: list[_Worker] = field(init=False, default_factory=list)  # every started, unstopped worker
+    _late: list[CaseResult] = field(init=False, default_factory=list)  # replacements for delivered cases
 
     def __post_init__(self) -> None:
         method = "spawn" if self.spec else ("fork" if "fork" in mp.get_all_start_methods() else "spawn")
@@ -94,95 +147,239 @@ class WorkerPool:
         if method == "spawn" and not self.spec:
             raise ValueError("this platform cannot fork: give the kernel's spec so workers can load it")
 
+    # ---------------------------------------------------------------- workers
     def _start(self) -> _Worker:
         parent, child = self._ctx.Pipe()
         kernel = None if self.spec else self.kernel
-        p = self._ctx.Process(target=_worker_main, args=(child, kernel, self.spec, self.seed, self.overrides),
-                              daemon=True)
+        p = self._ctx.Process(target=_worker_main,
+                              args=(child, kernel, self.spec, self.seed, self.overrides, os.getpid()), daemon=True)
         p.start()
         child.close()
-        if not parent.poll(_STARTUP_TIMEOUT):
-            p.kill()
-            raise RuntimeError(f"a worker process did not start within {_STARTUP_TIMEOUT:g} s")
+        pidfd = _pidfd(p.pid)
+        w = _Worker(proc=p, conn=parent, pid=p.pid, exit_fd=pidfd if pidfd is not None else p.sentinel, pidfd=pidfd)
+        self._live.append(w)  # from here on, whatever happens, _stop can find it
         try:
-            tag, info = parent.recv()
-        except EOFError:
-            p.join(timeout=5)
-            raise RuntimeError(f"a worker process died while starting (exit code {p.exitcode})") from None
-        if tag != "ready":
-            p.join(timeout=5)
-            raise RuntimeError(f"a worker process could not load the kernel: {info}")
-        return _Worker(proc=p, conn=parent)
+            if not wait([parent, w.exit_fd], timeout=_STARTUP_TIMEOUT):
+                raise RuntimeError(f"a worker process did not start within {_STARTUP_TIMEOUT:g} s")
+            try:
+                msg = parent.recv() if parent.poll() else None
+            except (EOFError, OSError):
+                msg = None
+            if msg is None:
+                wait([w.exit_fd], timeout=_STOP_WAIT)
+                raise RuntimeError(f"a worker process died while starting ({self._how_ended(w)})")
+            if msg[0] == "load_error":
+                raise RuntimeError(f"a worker process could not load the kernel: {msg[1]}")
+            if msg[0] != "ready" or msg[1] != p.pid:
+                raise RuntimeError(f"a worker process sent {_brief(msg)} instead of its ready message")
+        except BaseException:
+            self._stop(w, kill=True)
+            raise
+        return w
+
+    def _how_ended(self, w: _Worker) -> str:
+        """How a worker that has exited ended (reaps it after killing what is left of its group)."""
+        isolation.kill_group(w.pid)
+        w.proc.join(timeout=_STOP_WAIT)
+        w.reaped = True
+        code = w.proc.exitcode
+        if code is not None and code < 0:
+            try:
+                return f"killed by signal {signal.Signals(-code).name} ({-code})"
+            except ValueError:
+                return f"killed by signal {-code}"
+        return f"exited with code {code}"
 
     def _stop(self, w: _Worker, kill: bool = False) -> None:
-        try:
-            if kill:
-                w.proc.kill()
-            else:
+        """End a worker and its process group; a graceful stop first lets it leave its loop."""
+        if w not in self._live:
+            return
+        self._live.remove(w)
+        if not kill:
+            try:
                 w.conn.send(None)
-        except (OSError, BrokenPipeError):
-            pass
-        w.proc.join(timeout=5)
-        if w.proc.is_alive():
-            w.proc.kill()
-            w.proc.join(timeout=5)
+                wait([w.exit_fd], timeout=_STOP_WAIT)  # exited, not yet reaped: its pid still names its group
+                self._drain(w)
+            except (OSError, EOFError):
+                pass
+        if not w.reaped:  # a zombie still holds its pid, so the group id cannot have been reused
+            isolation.kill_group(w.pid)  # the worker (if still there) and every process its kernel left
+        w.proc.kill()
+        w.proc.join(timeout=_STOP_WAIT)
+        w.reaped = True
         w.conn.close()
+        if w.pidfd is not None:
+            os.close(w.pidfd)
 
+    def _drain(self, w: _Worker) -> None:
+        """Messages left on a stopped worker's pipe: each is a late second reply."""
+        while w.conn.poll(0):
+            try:
+                msg = w.conn.recv()
+            except (EOFError, OSError):
+                return
+            except Exception:  # an unreadable stream: nothing more can be read from it
+                return
+            self._late_reply(w, msg, "after the worker was told to stop")
+
+    def _late_reply(self, w: _Worker, msg: Any, when: str) -> str | None:
+        """Record a crashed replacement for the earlier case a stray reply names; return that case's id."""
+        token = msg[1] if isinstance(msg, tuple) and len(msg) > 1 else None
+        earlier = w.answered.get(token) if isinstance(token, str) else None
+        if earlier is None:
+            return None
+        self._late.append(CaseResult(
+            id=earlier.id, case=earlier.as_dict(), status="crashed",
+            message=f"protocol error: a second reply to this case arrived {when}; its first reply cannot be "
+                    "trusted"))
+        return earlier.id
+
+    # ---------------------------------------------------------------- one exchange
+    def _send(self, w: _Worker, case: Case) -> None:
+        w.case, w.started, w.token = case, time.monotonic(), secrets.token_hex(8)
+        w.conn.send(("case", w.token, case.as_dict()))
+
+    def _dispatch(self, i: int, case: Case) -> None:
+        """Send ``case`` to worker i; one that died while idle is replaced first."""
+        try:
+            self._send(self._pool[i], case)
+        except OSError:
+            self._stop(self._pool[i], kill=True)
+            self._pool[i] = self._start()
+            self._send(self._pool[i], case)
+
+    def _answer(self, w: _Worker) -> tuple[CaseResult, bool]:
+        """The checked answer to w's case, and whether w may take the next case (else it is stopped)."""
+        case, elapsed = w.case, time.monotonic() - w.started
+        try:
+            msg = self._read(w)
+            if msg is None:  # nothing to read: the worker died (or closed its end of the pipe)
+                if wait([w.exit_fd], timeout=_STOP_WAIT):
+                    how = self._how_ended(w)
+                else:
+                    how = "closed its end of the pipe without answering (it was killed)"
+                self._stop(w, kill=True)
+                return CaseResult(id=case.id, case=case.as_dict(), status="crashed",
+                                  message=f"the worker process running the kernel {how}", duration_s=elapsed), False
+            res = self._check(w, msg)
+            self._confirm(w)
+        except _Protocol as e:
+            self._stop(w, kill=True)
+            return CaseResult(id=case.id, case=case.as_dict(), status="crashed",
+                              message=f"protocol error: {e}; the worker and its process group were stopped and a "
+                                      "fresh worker takes over", duration_s=elapsed), False
+        w.answered[w.token] = case
+        if res.status == "crashed":  # the worker caught a fault of its own process (a forked copy): replace it
+            self._stop(w, kill=True)
+            return res, False
+        return res, True
+
+    def _read(self, w: _Worker) -> Any:
+        try:
+            if not w.conn.poll():
+                return None
+            return w.conn.recv()
+        except (EOFError, OSError):
+            return None
+        except Exception as e:  # a corrupt stream: unpickling raises many types
+            raise _Protocol(f"an unreadable reply ({type(e).__name__}: {cap_text(str(e), 200)})") from None
+
+    def _check(self, w: _Worker, msg: Any) -> CaseResult:
+        if not (isinstance(msg, tuple) and len(msg) == 4 and msg[0] == "result"):
+            raise _Protocol(f"an unexpected message {_brief(msg)} instead of a result")
+        _, token, pid, body = msg
+        if token != w.token:
+            earlier = self._late_reply(w, msg, f"while case {w.case.id} ran")
+            if earlier is not None:
+                raise _Protocol(f"a second reply to the earlier case {earlier} arrived while this case ran")
+            raise _Protocol(f"a reply with token {_brief(token)}, which was never sent")
+        if pid != w.pid:
+            raise _Protocol(f"a reply from process {pid}, not from the worker (process {w.pid}): a process the "
+                            "kernel forked answered")
+        if not isinstance(body, dict) or body.get("id") != w.case.id:
+            got = body.get("id") if isinstance(body, dict) else body
+            raise _Protocol(f"a result for case {_brief(got)}, not for the case sent")
+        if body.get("status") not in STATUSES:
+            raise _Protocol(f"a result with status {_brief(body.get('status'))}")
+        try:
+            return CaseResult.from_dict(body)
+        except Exception as e:
+            raise _Protocol(f"a result that cannot be read ({type(e).__name__}: {e})") from None
+
+    def _confirm(self, w: _Worker) -> None:
+        """Ask the worker to confirm; anything else it sent in between is a second reply."""
+        token = secrets.token_hex(8)
+        try:
+            w.conn.send(("sync", token, None))
+        except OSError:
+            raise _Protocol("the worker was gone right after its reply, before confirming it") from None
+        deadline = time.monotonic() + _CONFIRM_TIMEOUT
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0 or not wait([w.conn, w.exit_fd], timeout=left):
+                raise _Protocol(f"no confirmation of its reply within {_CONFIRM_TIMEOUT:g} s")
+            msg = self._read(w)
+            if msg is None:
+                wait([w.exit_fd], timeout=_STOP_WAIT)
+                raise _Protocol(f"the worker process {self._how_ended(w)} right after its reply, before "
+                                "confirming it")
+            if msg == ("synced", token, w.pid):
+                return
+            if isinstance(msg, tuple) and len(msg) == 4 and msg[0] == "result" and msg[1] == w.token:
+                raise _Protocol("a second reply to this case")
+            earlier = self._late_reply(w, msg, f"while case {w.case.id} was being confirmed")
+            if earlier is not None:
+                raise _Protocol(f"a second reply to the earlier case {earlier} arrived after this case's reply")
+            raise _Protocol(f"an unexpected message {_brief(msg)} after its reply")
+
+    def _timed_out(self, w: _Worker) -> CaseResult:
+        case = w.case
+        self._stop(w, kill=True)
+        return CaseResult(id=case.id, case=case.as_dict(), status="timed_out",
+                          message=f"no answer within the per-case timeout of {self.timeout:g} s; the worker and "
+                                  "its process group were killed", duration_s=self.timeout)
+
+    def _deliver_late(self, on_result: Callable[[CaseResult], None]) -> None:
+        while self._late:
+            on_result(self._late.pop(0))
+
+    # ---------------------------------------------------------------- the run
     def run(self, cases: Iterable[Case], on_result: Callable[[CaseResult], None]) -> None:
         pending = list(cases)[::-1]
+        if not pending:
+            return
         n = max(1, min(self.workers, len(pending)))
-        self._pool = [self._start() for _ in range(n)]
+        finished = False
         try:
+            self._pool = []
+            for _ in range(n):
+                self._pool.append(self._start())
             while pending or any(w.case is not None for w in self._pool):
-                for w in self._pool:
+                for i, w in enumerate(self._pool):
                     if w.case is None and pending:
-                        w.case = pending.pop()
-                        w.started = time.monotonic()
-                        w.conn.send(w.case.as_dict())
+                        self._dispatch(i, pending.pop())
                 busy = [w for w in self._pool if w.case is not None]
                 deadline = min(w.started + self.timeout for w in busy)
-                ready = wait([w.conn for w in busy] + [w.proc.sentinel for w in busy],
+                ready = wait([w.conn for w in busy] + [w.exit_fd for w in busy],
                              timeout=max(0.0, deadline - time.monotonic()))
                 for i, w in enumerate(self._pool):
                     if w.case is None:
                         continue
-                    if w.conn in ready or w.proc.sentinel in ready:
-                        res = self._collect(w)
+                    if w.conn in ready or w.exit_fd in ready:
+                        res, usable = self._answer(w)
                     elif time.monotonic() >= w.started + self.timeout:
-                        res = CaseResult(id=w.case.id, case=w.case.as_dict(), status="timed_out",
-                                         message=f"no answer within the per-case timeout of {self.timeout:g} s; "
-                                                 "the worker was killed",
-                                         duration_s=self.timeout)
-                        self._stop(w, kill=True)
-                        w = self._pool[i] = self._start()
+                        res, usable = self._timed_out(w), False
                     else:
                         continue
-                    if res.status == "crashed":
-                        self._pool[i] = self._start()
-                    else:
-                        self._pool[i].case = None
+                    if usable:
+                        w.case = None
                     on_result(res)
+                    self._deliver_late(on_result)
+                    if not usable:
+                        self._pool[i] = self._start()
+            finished = True
         finally:
-            for w in self._pool:
-                self._stop(w, kill=w.case is not None)
+            for w in list(self._live):  # on Ctrl-C or an error: kill at once
+                self._stop(w, kill=not finished or w.case is not None)
             self._pool = []
-
-    def _collect(self, w: _Worker) -> CaseResult:
-        case, elapsed = w.case, time.monotonic() - w.started
-        try:
-            if w.conn.poll():
-                return CaseResult.from_dict(w.conn.recv())
-        except (EOFError, OSError):
-            pass
-        w.proc.join(timeout=5)
-        code = w.proc.exitcode
-        if code is not None and code < 0:
-            try:
-                how = f"killed by signal {signal.Signals(-code).name} ({-code})"
-            except ValueError:
-                how = f"killed by signal {-code}"
-        else:
-            how = f"exited with code {code}"
-        self._stop(w, kill=True)
-        return CaseResult(id=case.id, case=case.as_dict(), status="crashed",
-                          message=f"the worker process running the kernel {how}", duration_s=elapsed)
+        self._deliver_late(on_result)

@@ -9,6 +9,9 @@ from typing import TextIO
 
 from ..results import CaseResult
 
+#: Characters of a case's message shown in its progress line.
+_LINE = 240
+
 _MARK = {"passed": "PASS", "failed": "FAIL", "crashed": "CRASH", "timed_out": "TIMEOUT",
          "error": "ERROR", "skipped": "SKIP"}
 
@@ -35,6 +38,8 @@ class Progress:
             return
         if r.status not in ("passed", "skipped"):
             first = r.message.splitlines()[0] if r.message else ""
+            if len(first) > _LINE:  # the whole message is in the results; a log line stays a line
+                first = first[:_LINE] + f"... [{len(first) - _LINE:,} more characters]"
             self._line(f"{_MARK[r.status]:7s} {r.id}  {first}")
         if self.tty:
             self._bar(r.id)

@@ -8,6 +8,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Mapping, TextIO
 
+from .. import stop
 from ..cases import catalog, find_case
 from ..cases.model import Case
 from ..kernel import Kernel
@@ -34,9 +35,9 @@ class RunOptions:
 
 
 def select_cases(kernel: Kernel, opts: RunOptions) -> list[Case]:
-    """The catalog cases for the kernel's op and dtypes (or the named cases only)."""
+    """The catalog cases for the kernel's op and dtypes (or the named cases only, each once)."""
     if opts.case_ids:
-        return [find_case(cid) for cid in opts.case_ids]
+        return [find_case(cid) for cid in dict.fromkeys(opts.case_ids)]
     dts = opts.dtypes or kernel.dtypes
     return catalog([kernel.op], dts, opts.tier)
 
@@ -45,7 +46,11 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
               stream: TextIO | None = None, quiet: bool = False) -> dict[str, Any]:
     """Run every selected case in worker processes; return the results document.
 
-    Ctrl-C stops the run: the document then has complete=False and verdict "incomplete".
+    Ctrl-C (and, under the command line's conformance.stop handlers, SIGTERM and SIGHUP)
+    stops the run: the document then has complete=False, verdict "incomplete" and the
+    signal in run["interrupted"]. Every selected case gets exactly one result: a second
+    result delivered for a case makes it "crashed", and a case that got none although the
+    run was not interrupted is "crashed" too; the document's "coverage" checks it again.
     """
     cases = select_cases(kernel, opts)
     started, t0 = now_iso(), time.monotonic()
@@ -57,36 +62,56 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
             results[c.id] = CaseResult(id=c.id, case=c.as_dict(), status="skipped", message=why)
         else:
             to_run.append(c)
+    sent = {c.id for c in to_run}
+    stray: list[CaseResult] = []  # results for ids that were never sent: kept, so that coverage names them
     prog = Progress(len(to_run), stream or sys.stderr, quiet=quiet)
-    complete = True
+    interrupted: str | None = None
 
     def done(r: CaseResult) -> None:
-        results[r.id] = r
-        prog.update(r)
+        if r.id not in sent:
+            stray.append(r)
+        elif r.id in results:  # a second result for one case is never kept in silence
+            results[r.id] = r if r.status == "crashed" else CaseResult(
+                id=r.id, case=r.case, status="crashed",
+                message="protocol error: two results were delivered for this case; neither can be trusted")
+        else:
+            results[r.id] = r
+            prog.update(r)
 
     pool = WorkerPool(kernel, seed=opts.seed, workers=opts.workers, timeout=opts.timeout, spec=spec,
                       overrides=dict(opts.overrides))
     try:
-        pool.run(to_run, done)
-    except KeyboardInterrupt:
-        complete = False
+        with stop.interruptible():
+            pool.run(to_run, done)
+    except KeyboardInterrupt as e:
+        interrupted = getattr(e, "signal", "SIGINT")
     finally:
         prog.close()
-    ordered = [results[c.id] for c in cases if c.id in results]
-    run = {
-        "tier": opts.tier if not opts.case_ids else "selected",
-        "seed": opts.seed,
-        "dtypes": list(opts.dtypes or kernel.dtypes),
-        "case_ids": list(opts.case_ids),
-        "workers": opts.workers,
-        "timeout_s": opts.timeout,
-        "overrides": {k: list(v) for k, v in opts.overrides.items()},
-        "started": started,
-        "finished": now_iso(),
-        "duration_s": round(time.monotonic() - t0, 3),
-        "cases_selected": len(cases),
-        "command": opts.command,
-        "spec": spec,
-        "pid": os.getpid(),
-    }
-    return build_document(kernel.declaration(), run, ordered, complete)
+    with stop.holding():  # a signal now must not cost the document
+        if interrupted is None:
+            for c in to_run:
+                if c.id not in results:
+                    results[c.id] = CaseResult(
+                        id=c.id, case=c.as_dict(), status="crashed",
+                        message="no result came back for this case although the run was not interrupted "
+                                "(a fault of the harness: please report it)")
+        ordered = [results[c.id] for c in cases if c.id in results] + stray
+        run = {
+            "tier": opts.tier if not opts.case_ids else "selected",
+            "seed": opts.seed,
+            "dtypes": list(opts.dtypes or kernel.dtypes),
+            "case_ids": list(opts.case_ids),
+            "workers": opts.workers,
+            "timeout_s": opts.timeout,
+            "overrides": {k: list(v) for k, v in opts.overrides.items()},
+            "started": started,
+            "finished": now_iso(),
+            "duration_s": round(time.monotonic() - t0, 3),
+            "cases_selected": len(cases),
+            "interrupted": interrupted,
+            "command": opts.command,
+            "spec": spec,
+            "pid": os.getpid(),
+        }
+        return build_document(kernel.declaration(), run, ordered, interrupted is None,
+                              selected=[c.id for c in cases])
