@@ -25,7 +25,7 @@ import pytest
 from hypothesis import HealthCheck, event, given, seed, settings
 from hypothesis import strategies as st
 
-from conformance import dtypes
+from conformance import dtypes, ops
 from conformance.cases import find_case
 from conformance.cases.generators import make_inputs
 from conformance.cli import main
@@ -708,3 +708,46 @@ def test_load_manifest_refuses_a_folder_without_one(tmp_path):
         load_manifest(tmp_path)
     with pytest.raises(VectorsError, match="not a folder"):
         load_manifest(tmp_path / "nothing")
+
+
+# ------------------------------------------------------------------ every op: score equals check
+def _rounded_oracle(spec, dtype: str):
+    """A kernel of any registered op: the oracle's values rounded to the storage format (correctly
+    rounded: Higham 2002, §2.2), the outputs a perfect target writes from the stored expected values."""
+    from conformance.kernel import Kernel, call_with
+
+    fmt = dtypes.dtype_of(dtype)
+
+    def up(kw):
+        return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
+
+    def forward(**kw):
+        return np.asarray(call_with(spec.forward, up(kw)).y).astype(fmt)
+
+    def backward(**kw):
+        g = call_with(spec.backward, up(kw))
+        return tuple(np.asarray(a).astype(fmt) for a in (g.dx, g.dweight, g.dbias))
+
+    entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
+    return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False, **entries)
+
+
+@pytest.mark.parametrize("op", ops.OPS)
+def test_for_every_op_score_of_a_perfect_target_is_check_of_the_rounded_oracle(tmp_path, op):
+    # The same checked outputs, the same bounds and the same comparison: the records are equal field
+    # for field (durations aside), so nothing in export or score depends on which op it is.
+    from conformance.cases import catalog
+    from conformance.run.execute import execute_case
+    from conformance.vectors.export import export_vectors
+    from conformance.vectors.score import score_outputs
+
+    kernel = _rounded_oracle(ops.get(op), "float32")
+    cases = catalog([op], ["float32"], "smoke")
+    v = tmp_path / "v"
+    v.mkdir()
+    export_vectors(kernel, cases, v, seed=0, tier="smoke", quiet=True)
+    doc = score_outputs(load_manifest(v), perfect(v, tmp_path / "out"), quiet=True)
+    for got, c in zip(doc["cases"], cases):
+        want = execute_case(kernel, c, 0).to_dict()
+        assert got["id"] == want["id"] and got["status"] == want["status"] == "passed", want["message"]
+        assert got["outputs"] == want["outputs"], c.id
