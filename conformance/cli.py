@@ -41,7 +41,9 @@ EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 #:                                     lines naming them, printed after the summary
 #:   verdict_lines(args, doc) -> [str] lines printed after the verdict (the gate's decision)
 #:   exit_code(args, doc, code) -> int after every artefact is written: the exit status (the gate's)
-EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli")
+#: Another command that makes a results document (`refnorm score`) runs the same steps with its own
+#: hooks: prepare_outputs(args, hooks) before, finish(args, doc, hooks) after.
+EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli")
 
 
 def _extensions():
@@ -148,13 +150,8 @@ def _prepare(args: argparse.Namespace) -> None:
         args.json = file_target(args.json, "--json")
 
 
-def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    from . import stop
-    from .results import write_json_atomic
-    from .run import run_check
-    from .summary import summary_table, verdict_lines
-
-    exts = _extensions()
+def prepare_outputs(args: argparse.Namespace, exts) -> None:
+    """Before a run: --json's destination, then each extension's ``prepare`` (DestinationError is usage)."""
     try:
         _prepare(args)
         for ext in exts:
@@ -162,6 +159,13 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
                 ext.prepare(args)
     except DestinationError as e:
         raise UsageError(str(e)) from None
+
+
+def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
+    from .run import run_check
+
+    exts = _extensions()
+    prepare_outputs(args, exts)
     for k, v in DEFAULTS.items():
         if getattr(args, k, None) is None:
             setattr(args, k, v)
@@ -172,6 +176,16 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
         doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
+    return finish(args, doc, exts)
+
+
+def finish(args: argparse.Namespace, doc: dict[str, Any], exts) -> int:
+    """After a run (check's, or any command that makes a results document): amend, write the artefacts,
+    print the summary and the verdict, and return the exit status. ``exts`` are the hooks to call."""
+    from . import stop
+    from .results import write_json_atomic
+    from .summary import summary_table, verdict_lines
+
     with stop.holding():  # a signal from here on is held until the results are written
         for ext in exts:
             if hasattr(ext, "amend"):

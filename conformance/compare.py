@@ -18,7 +18,7 @@ import numpy as np
 from . import dtypes
 from .tolerances.bound import Bound, json_number
 
-__all__ = ["OutputResult", "compare_output", "ulp_histogram"]
+__all__ = ["OutputResult", "compare_output", "unread_output", "ulp_histogram"]
 
 
 @dataclass
@@ -104,6 +104,13 @@ def _failed(name: str, dtype: str, expected: np.ndarray, bound: Bound, message: 
                         worst_actual=float("nan"), worst_expected=float("nan"), worst_bound=float("nan"),
                         nan_mismatch=0, inf_mismatch=0, ulp_hist={}, bound=bound.summary(), passed=False,
                         message=message)
+
+
+def unread_output(name: str, expected: np.ndarray, bound: Bound, *, dtype: str, message: str) -> OutputResult:
+    """A failed comparison of an output that could not be read (a missing or refused file): every
+    element counts as mismatched, the budget used is infinite, and ``message`` says why."""
+    exp = np.asarray(expected, dtype=np.float64)
+    return _failed(name, dtype, exp, bound, message, exp.shape)
 
 
 def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *, dtype: str) -> OutputResult:

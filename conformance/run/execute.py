@@ -23,7 +23,8 @@ from ..results import CaseResult, cap_text
 from ..tolerances import derive_bounds, output_dtype, override_bound
 from .isolation import ForkedCopy, call_kernel
 
-__all__ = ["execute_case", "skip_reason", "KernelCallError", "describe_exception"]
+__all__ = ["execute_case", "skip_reason", "KernelCallError", "describe_exception", "declared_outputs",
+           "oracle_expected", "case_bounds", "judged", "given_saved"]
 
 
 class KernelCallError(Exception):
@@ -107,10 +108,20 @@ def _changed(before: np.ndarray, after: np.ndarray) -> bool:
     return not np.array_equal(np.ascontiguousarray(before).view(view), np.ascontiguousarray(after).view(view))
 
 
+def given_saved(kernel: Kernel, case: Case, oracle_fwd) -> dict[str, np.ndarray]:
+    """The saved statistics a training backward is given when the kernel has no forward to take them
+    from: the oracle's, rounded to the params dtype (empty when it has a forward or saves nothing)."""
+    if case.mode != "train" or not kernel.conventions.saved or kernel.forward is not None:
+        return {}
+    from ..dtypes import round_to
+
+    prec = kernel.precision_for(case.dtype)
+    return {s: round_to(ops.saved_form(s, oracle_fwd, case), prec.params) for s in kernel.conventions.saved}
+
+
 def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd) -> tuple[dict[str, Any], list[str]]:
     """Call the kernel's entry points for the case; return its outputs by name and the inputs it modified."""
     conv = kernel.conventions
-    prec = kernel.precision_for(case.dtype)
     train = case.mode == "train"
     out: dict[str, Any] = {}
     modified: list[str] = []
@@ -137,11 +148,8 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd)
         saved = {s: got[s] for s in conv.saved if s in got} if train else {}
     bwd = "backward" if train else "backward_eval"
     if getattr(kernel, bwd) is not None:
-        if train and not saved and conv.saved and getattr(kernel, fwd) is None:
-            # No forward to take them from: give the oracle's, rounded to the params dtype.
-            from ..dtypes import round_to
-
-            saved = {s: round_to(ops.saved_form(s, oracle_fwd, case), prec.params) for s in conv.saved}
+        if train and not saved:
+            saved = given_saved(kernel, case, oracle_fwd)
         before = _snapshot(inp)
         res = _call(kernel, bwd, ops.kernel_kwargs(case, bwd, inp, saved=saved))
         out.update(_named(res, kernel.grads, bwd))
@@ -161,6 +169,67 @@ def execute_case(kernel: Kernel, case: Case, seed: int,
     with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore", RuntimeWarning)
         return _execute(kernel, case, seed, overrides)
+
+
+def declared_outputs(kernel: Kernel, case: Case) -> tuple[str, ...]:
+    """The outputs the kernel's entry points give for the case, as the harness names them.
+
+    Training: ``kernel.outputs`` (running_mean/running_var only when the case updates running
+    statistics and the kernel declares updates_running; read back from the arrays it was given
+    when ``conventions.running == "inplace"``), then ``kernel.grads`` when it has a backward.
+    Eval: y from forward_eval, then the grads from backward_eval.
+    """
+    train = case.mode == "train"
+    names: list[str] = []
+    if getattr(kernel, "forward" if train else "forward_eval") is not None:
+        if not train:
+            names.append("y")
+        else:
+            running = case.running and kernel.updates_running
+            names += [n for n in kernel.outputs if running or n not in ops.RUNNING_OUTPUTS]
+            if running and kernel.conventions.running == "inplace":
+                names += [n for n in ops.RUNNING_OUTPUTS if n not in names]
+    if getattr(kernel, "backward" if train else "backward_eval") is not None:
+        names += list(kernel.grads)
+    return tuple(names)
+
+
+def oracle_expected(kernel: Kernel, case: Case, inp64: dict[str, Any], fwd, names: tuple[str, ...]) -> dict[str, np.ndarray]:
+    """The oracle's values (float64) of the outputs ``names`` that the case checks, in the order the
+    harness checks them: the forward outputs, then dx, dweight (with a weight), dbias (with a bias)."""
+    conv = kernel.conventions
+    expected = ops.forward_outputs(case, conv, fwd, kernel.outputs, kernel.updates_running)
+    if any(k in names for k in ops.GRADS):
+        bwd = ops.oracle_backward(case, conv, inp64)
+        expected["dx"] = bwd.dx
+        if case.weight != "none":
+            expected["dweight"] = bwd.dweight
+        if case.bias != "none":
+            expected["dbias"] = bwd.dbias
+    return {k: v for k, v in expected.items() if k in names}
+
+
+def case_bounds(case: Case, prec, conv, inp64: dict[str, Any], expected: dict[str, np.ndarray],
+                overrides: Mapping[str, tuple[float, float]] | None = None) -> dict[str, Any]:
+    """The derived bound of every expected output, or the fixed atol + rtol |expected| of an override."""
+    bounds = derive_bounds(case, prec, conv, inp64, expected)
+    for name, (atol, rtol) in (overrides or {}).items():
+        if name in expected:
+            bounds[name] = override_bound(name, expected[name], atol, rtol)
+    return bounds
+
+
+def judged(case: Case, results: list, modified: list[str] = (), **timing: float) -> CaseResult:
+    """The case's result from its output comparisons: failed when one output is not within its bound
+    (or the kernel modified an input), else passed."""
+    failed = [r for r in results if not r.passed]
+    status = "failed" if failed or modified else "passed"
+    msgs = []
+    if modified:
+        msgs.append(f"the kernel modified its input(s) in place: {', '.join(modified)}")
+    msgs += [f"{r.name}: {r.message}" for r in failed]
+    return CaseResult(id=case.id, case=case.as_dict(), status=status, message="\n".join(msgs),
+                      outputs=[r.to_dict() for r in results], modified_inputs=list(modified), **timing)
 
 
 def _execute(kernel: Kernel, case: Case, seed: int,
@@ -190,20 +259,9 @@ def _execute(kernel: Kernel, case: Case, seed: int,
     kernel_s = time.perf_counter() - t_k
 
     t_or = time.perf_counter()
-    expected = ops.forward_outputs(case, conv, fwd, kernel.outputs, kernel.updates_running)
-    if any(k in raw for k in ("dx", "dweight", "dbias")):
-        bwd = ops.oracle_backward(case, conv, inp64)
-        expected["dx"] = bwd.dx
-        if case.weight != "none":
-            expected["dweight"] = bwd.dweight
-        if case.bias != "none":
-            expected["dbias"] = bwd.dbias
+    expected = oracle_expected(kernel, case, inp64, fwd, tuple(raw))
     oracle_s += time.perf_counter() - t_or
-    expected = {k: v for k, v in expected.items() if k in raw}
-    bounds = derive_bounds(case, prec, conv, inp64, expected)
-    for name, (atol, rtol) in (overrides or {}).items():
-        if name in expected:
-            bounds[name] = override_bound(name, expected[name], atol, rtol)
+    bounds = case_bounds(case, prec, conv, inp64, expected, overrides)
 
     results = []
     for name, exp in expected.items():
@@ -219,12 +277,5 @@ def _execute(kernel: Kernel, case: Case, seed: int,
                               message=f"output {name}: cannot read the returned {type(act).__name__} as an array: {e}",
                               duration_s=time.perf_counter() - t0)
         results.append(compare_output(name, act, exp, bounds[name], dtype=output_dtype(name, prec)))
-    failed = [r for r in results if not r.passed]
-    status = "failed" if failed or modified else "passed"
-    msgs = []
-    if modified:
-        msgs.append(f"the kernel modified its input(s) in place: {', '.join(modified)}")
-    msgs += [f"{r.name}: {r.message}" for r in failed]
-    return CaseResult(id=case.id, case=case.as_dict(), status=status, message="\n".join(msgs),
-                      outputs=[r.to_dict() for r in results], duration_s=time.perf_counter() - t0,
-                      kernel_s=kernel_s, oracle_s=oracle_s, modified_inputs=modified)
+    return judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
+                  oracle_s=oracle_s)
