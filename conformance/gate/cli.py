@@ -137,8 +137,8 @@ def _load_doc(path: str, what: str) -> dict[str, Any]:
 
     try:
         return load(path)
-    except (OSError, ValueError) as e:
-        raise _usage(f"{what} {path}: {e}") from None
+    except ValueError as e:  # conformance.documents.DocumentError: names the file and the field
+        raise _usage(f"{what}: {e}") from None
 
 
 def amend(args: argparse.Namespace, doc: dict[str, Any]) -> dict[str, Any]:
@@ -218,9 +218,21 @@ def add_commands(subparsers) -> None:
     d.set_defaults(func=cmd_diff)
 
 
+#: Longest NAME of a results file NAME.json: with the suffix and a "-N" for a repeated name it stays
+#: within the 255 bytes a file name may have on common file systems (ext4, XFS, APFS, NTFS).
+MAX_NAME = 200
+
+
 def result_name(kernel_name: str, taken: set[str]) -> str:
-    """A file name for a kernel's results: its name with anything but [A-Za-z0-9._-] made '_'."""
+    """A file name for a kernel's results: its name with anything but [A-Za-z0-9._-] made '_', at
+    most MAX_NAME characters (a longer name keeps its start and gets a hash of the whole name, so
+    two long names that differ only at the end stay apart)."""
+    import hashlib
+
     base = re.sub(r"[^A-Za-z0-9._-]+", "_", kernel_name).strip("._") or "kernel"
+    if len(base) > MAX_NAME:
+        digest = hashlib.sha256(kernel_name.encode("utf-8", "surrogatepass")).hexdigest()[:16]
+        base = f"{base[:MAX_NAME - 17].rstrip('._-')}-{digest}"
     name, i = base, 2
     while name in taken:
         name, i = f"{base}-{i}", i + 1

@@ -61,10 +61,8 @@ def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
     src = Path(args.results)
     try:
         doc = load(src)
-    except FileNotFoundError:
-        raise UsageError(f"RESULTS.json: {src} does not exist")
-    except ValueError as e:  # not JSON, or another schema or version
-        raise UsageError(f"RESULTS.json: {e}")
+    except ValueError as e:  # conformance.documents.DocumentError: names the file and the field
+        raise UsageError(f"RESULTS.json: {e}") from None
     out = Path(args.out)
     stored = [out / FILES["peers"], src.parent / FILES["peers"]]
     peers, note = gather_peers(doc, args.peers, stored=stored, quiet=args.quiet,
