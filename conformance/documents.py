@@ -25,6 +25,7 @@ is wrong; the command line turns it into exit status 2.
 
 from __future__ import annotations
 
+import errno
 import json
 import os
 import re
@@ -60,7 +61,8 @@ class DocumentError(ValueError):
         super().__init__(str(self))
 
     def __str__(self) -> str:
-        where = f"{self.source}: {self.field}" if self.field else self.source
+        src = visible(self.source)  # a path may hold control characters too
+        where = f"{src}: {self.field}" if self.field else src
         return f"{where}: {self.problem}"
 
 
@@ -106,7 +108,7 @@ def _read_bytes(source: str, kind: Kind) -> bytes:
     except PermissionError:
         raise DocumentError(source, "", "cannot be read: permission denied") from None
     except OSError as e:
-        if e.errno == getattr(__import__("errno"), "ENAMETOOLONG", None):
+        if e.errno == errno.ENAMETOOLONG:
             raise DocumentError(_short(source), "", "the file name is too long for this system") from None
         raise DocumentError(_short(source), "", f"cannot be read: {e.strerror or e}") from None
     except ValueError as e:  # an embedded NUL in the path
