@@ -245,15 +245,12 @@ def write_json_atomic(path: str | os.PathLike, doc: dict[str, Any]) -> Path:
 
 
 def load(path: str | os.PathLike) -> dict[str, Any]:
-    """Read a results document and check its schema and version."""
-    with open(path) as f:
-        doc = json.load(f)
-    if doc.get("schema") != SCHEMA:
-        raise ValueError(f"{path}: not a refnorm results file (schema is {doc.get('schema')!r}, expected {SCHEMA!r})")
-    if doc.get("schema_version") != SCHEMA_VERSION:
-        raise ValueError(f"{path}: results schema version {doc.get('schema_version')!r}, this refnorm reads "
-                         f"version {SCHEMA_VERSION}")
-    return doc
+    """Read a results document and check it (conformance.documents: JSON, schema, version, rules).
+
+    Raises conformance.documents.DocumentError (a ValueError) naming the file and the field."""
+    from .documents import read
+
+    return read(path)
 
 
 def case_results(doc: dict[str, Any]) -> list[CaseResult]:

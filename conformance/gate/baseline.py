@@ -11,7 +11,8 @@ when both runs passed the case and g > growth (default 2, docs/ci.md). The floor
 from counting as growth: below it, differences are far inside the tolerance.
 
 A case id fixes the case's data for a given seed only (Case.seed_for), so a
-baseline from another seed compares other data; that is reported as a note.
+baseline from another seed compares other data; that is reported as a note, and so
+is a baseline of another kernel, op, tier or set of dtypes.
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ import math
 from typing import Any, Mapping
 
 from ..results import as_float
+from ..tolerances.bound import json_number
 
 __all__ = ["baseline_index", "regress_case", "growth_of", "baseline_notes"]
 
@@ -70,13 +72,14 @@ def regress_case(case: dict[str, Any], old_case: Mapping[str, Any] | None, growt
             "max_abs": as_float(o.get("max_abs")),
             "baseline_max_abs": as_float(prev.get("max_abs")),
         }
+        msgs.append(f"{o['name']}: within its bound, but the budget used grew {g:.3g}x over the baseline "
+                    f"({rec['baseline_budget_used']:.3g} -> {rec['budget_used']:.3g} of the bound; max abs error "
+                    f"{rec['baseline_max_abs']:.3g} -> {rec['max_abs']:.3g}); the gate allows {growth:g}x")
+        rec = {k: json_number(v) for k, v in rec.items()}  # a baseline's max_abs may be "nan": the document stays JSON
         o["passed"] = False
         o["within_bound"] = True
         o["regression"] = rec
         found.append(rec)
-        msgs.append(f"{o['name']}: within its bound, but the budget used grew {g:.3g}x over the baseline "
-                    f"({rec['baseline_budget_used']:.3g} -> {rec['budget_used']:.3g} of the bound; max abs error "
-                    f"{rec['baseline_max_abs']:.3g} -> {rec['max_abs']:.3g}); the gate allows {growth:g}x")
     if found:
         case["status"] = "failed"
         case["message"] = "\n".join(([case["message"]] if case.get("message") else []) + msgs)
@@ -87,9 +90,24 @@ def baseline_notes(new: Mapping[str, Any], old: Mapping[str, Any]) -> list[str]:
     """Why a comparison with this baseline may mean less than it seems."""
     notes = []
     ks_new, ks_old = new.get("kernel", {}), old.get("kernel", {})
+    r_new, r_old = new.get("run", {}), old.get("run", {})
+    if ks_new.get("name") != ks_old.get("name"):
+        notes.append(f"the baseline is of kernel '{ks_old.get('name')}', this run of '{ks_new.get('name')}': "
+                     "growth compares two kernels, not one kernel over time")
     if ks_new.get("op") != ks_old.get("op"):
         notes.append(f"the baseline checked op {ks_old.get('op')}, this run {ks_new.get('op')}: no case in common")
-    s_new, s_old = new.get("run", {}).get("seed"), old.get("run", {}).get("seed")
+    if r_new.get("tier") != r_old.get("tier"):
+        notes.append(f"the baseline ran tier '{r_old.get('tier')}', this run '{r_new.get('tier')}': cases of one "
+                     "and not the other are not compared")
+    d_new = r_new.get("dtypes", ks_new.get("dtypes"))
+    d_old = r_old.get("dtypes", ks_old.get("dtypes"))
+    if d_new is not None and d_old is not None and sorted(d_new) != sorted(d_old):
+        only_new = [d for d in d_new if d not in d_old]
+        only_old = [d for d in d_old if d not in d_new]
+        what = "; ".join(p for p in (f"only in this run: {', '.join(only_new)}" if only_new else "",
+                                     f"only in the baseline: {', '.join(only_old)}" if only_old else "") if p)
+        notes.append(f"the baseline checked other dtypes ({what}): their cases are not compared")
+    s_new, s_old = r_new.get("seed"), r_old.get("seed")
     if s_new != s_old:
         notes.append(f"the baseline ran with seed {s_old}, this run with seed {s_new}: the same case ids hold "
                      "other data, so growth compares different samples")

@@ -107,8 +107,8 @@ def _load_doc(path: str, what: str) -> dict[str, Any]:
 
     try:
         return load(path)
-    except (OSError, ValueError) as e:
-        raise _usage(f"{what} {path}: {e}") from None
+    except ValueError as e:  # conformance.documents.DocumentError: names the file and the field
+        raise _usage(f"{what}: {e}") from None
 
 
 def amend(args: argparse.Namespace, doc: dict[str, Any]) -> dict[str, Any]:

@@ -20,7 +20,8 @@ from __future__ import annotations
 from datetime import date
 from typing import Any, Mapping, Sequence
 
-from ..results import case_results, counts, summarize, verdict
+from ..results import as_float, case_results, counts, summarize, verdict
+from ..text import visible
 from .baseline import baseline_index, baseline_notes, regress_case
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, Waiver
 from .waivers import OUTCOMES, WaiverUse, gate_outcome, judge_case, today_utc, waiver_summary
@@ -124,8 +125,10 @@ def gate_lines(doc: Mapping[str, Any], stale: bool = True) -> list[str]:
         lines.append(f"gate: baseline {b['path'] or '(given)'}: {b['compared']} passed case(s) compared, "
                      f"{len(b['regressions'])} output(s) grew more than {b['growth']:g}x")
         for r in b["regressions"]:
-            lines.append(f"gate: regression {r['case']} {r['output']}: budget used {r['baseline_budget_used']:.3g} "
-                         f"-> {r['budget_used']:.3g} ({r['growth']:.3g}x)")
+            lines.append(f"gate: regression {r['case']} {r['output']}: budget used "
+                         f"{as_float(r['baseline_budget_used']):.3g} -> {as_float(r['budget_used']):.3g} "
+                         f"({as_float(r['growth']):.3g}x)")
         lines += [f"warning: baseline: {n}" for n in b["notes"]]
     lines.append("note: " + g["caution"])
-    return lines
+    # Kernel names, case ids, waiver reasons and baseline notes come from kernels and files.
+    return [visible(line) for line in lines]

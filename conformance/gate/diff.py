@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from ..results import as_float
+from ..text import visible
 from .baseline import baseline_index, baseline_notes, growth_of
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR
 
@@ -42,6 +43,8 @@ class Diff:
                                                      for _, o, n in self.status))
 
     def lines(self) -> list[str]:
+        """The report for a terminal or CI log; case ids, statuses and output names come from the files,
+        so their control characters are shown as escapes (conformance.text.visible)."""
         out = []
         for cid, o, n in self.status:
             tag = "WORSE" if SEVERITY.get(n, 9) > SEVERITY.get(o, 9) else ("better" if SEVERITY.get(n, 9) <
@@ -54,6 +57,7 @@ class Diff:
         out += [f"{'WORSE':7s} {cid}: removed (in OLD, not in NEW)" for cid in self.removed]
         out += [f"{'added':7s} {cid}" for cid in self.added]
         out += [f"note: {n}" for n in self.notes]
+        out = [visible(line) for line in out]
         out.append(f"diff: {self.compared} case(s) in both, {len(self.status)} status change(s), "
                    f"{len(self.grew)} output(s) grew, {len(self.shrank)} shrank, {len(self.added)} added, "
                    f"{len(self.removed)} removed: {'WORSE' if self.worse else 'not worse'}")

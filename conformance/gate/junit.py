@@ -24,18 +24,22 @@ from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 from ..results import as_float
+from ..text import visible
 from .waivers import gate_outcome
 
 __all__ = ["junit_tree", "write_junit"]
 
 
-#: Characters XML 1.0 does not allow (W3C XML 1.0, section 2.2 "Characters"); a kernel's
-#: message may carry any of them, so they are shown as \xNN instead.
+#: Characters XML 1.0 allows (W3C XML 1.0, 5th ed., section 2.2 "Characters").
 _NOT_XML = re.compile("[^\u0009\u000a\u000d\u0020-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
 
 
-def _clean(text: str) -> str:
-    return _NOT_XML.sub(lambda m: f"\\x{ord(m.group()):02x}", text)
+def _clean(text: object) -> str:
+    """Any value of a document as XML text or attribute: what XML 1.0 does not allow (NUL, terminal
+    colour codes, lone surrogates) and the other hidden controls shown as \\xNN (conformance.text.visible).
+    Every name, attribute and text of the tree goes through here; ElementTree escapes &, < and quotes."""
+    t = visible(text)
+    return _NOT_XML.sub(lambda m: f"\\x{ord(m.group()):02x}", t) if _NOT_XML.search(t) else t
 
 
 def _first_line(msg: str, status: str) -> str:
@@ -47,14 +51,14 @@ def _first_line(msg: str, status: str) -> str:
 def _suite(doc: Mapping[str, Any]) -> ET.Element:
     kernel = doc.get("kernel", {})
     run = doc.get("run", {})
-    suite = ET.Element("testsuite", name=str(kernel.get("name", "kernel")))
+    suite = ET.Element("testsuite", name=_clean(kernel.get("name", "kernel")))
     props = ET.SubElement(suite, "properties")
     gate = doc.get("gate") or {}
     for k, v in (("spec", run.get("spec")), ("op", kernel.get("op")), ("tier", run.get("tier")),
                  ("seed", run.get("seed")), ("verdict", doc.get("verdict")), ("gate", gate.get("verdict")),
                  ("caution", doc.get("caution"))):
         if v is not None:
-            ET.SubElement(props, "property", name=k, value=_clean(str(v)))
+            ET.SubElement(props, "property", name=k, value=_clean(v))
     n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}
     total = 0.0
     for c in doc.get("cases", []):
@@ -62,17 +66,17 @@ def _suite(doc: Mapping[str, Any]) -> ET.Element:
         t = as_float(c.get("duration_s", 0.0))
         t = t if t == t else 0.0
         total += t
-        tc = ET.SubElement(suite, "testcase", classname=f"{case.get('op', kernel.get('op'))}.{case.get('dtype')}",
-                           name=_clean(c["id"]), time=f"{t:.3f}")
+        classname = _clean(f"{case.get('op', kernel.get('op'))}.{case.get('dtype')}")
+        tc = ET.SubElement(suite, "testcase", classname=classname, name=_clean(c["id"]), time=f"{t:.3f}")
         outcome, msg = gate_outcome(c)
         n["tests"] += 1
         if outcome == "failed":
             n["failures"] += 1
-            el = ET.SubElement(tc, "failure", message=_first_line(msg, c["status"]), type=c["status"])
+            el = ET.SubElement(tc, "failure", message=_first_line(msg, c["status"]), type=_clean(c["status"]))
             el.text = _clean(msg)
         elif outcome == "error":
             n["errors"] += 1
-            el = ET.SubElement(tc, "error", message=_first_line(msg, c["status"]), type=c["status"])
+            el = ET.SubElement(tc, "error", message=_first_line(msg, c["status"]), type=_clean(c["status"]))
             el.text = _clean(msg)
         elif outcome in ("skipped", "waived"):
             n["skipped"] += 1
@@ -83,7 +87,7 @@ def _suite(doc: Mapping[str, Any]) -> ET.Element:
     suite.set("skipped", str(n["skipped"]))
     suite.set("time", f"{total:.3f}")
     if run.get("started"):
-        suite.set("timestamp", str(run["started"]))
+        suite.set("timestamp", _clean(run["started"]))
     return suite
 
 

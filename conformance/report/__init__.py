@@ -13,9 +13,12 @@ write_report(doc, out_dir, peers=...) writes into out_dir:
 
 from __future__ import annotations
 
+import contextlib
 import os
+import shutil
+import tempfile
 from pathlib import Path
-from typing import Any, Iterable, TextIO
+from typing import Any, Callable, Iterable, Iterator, TextIO
 
 from ..results import write_json_atomic
 
@@ -25,11 +28,60 @@ __all__ = ["write_report", "gather_peers", "FILES"]
 FILES = {"html": "report.html", "markdown": "report.md", "results": "results.json", "peers": "peers.json"}
 
 
-def _write_text(path: Path, text: str) -> Path:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
-    return path
+@contextlib.contextmanager
+def _folder_lock(folder: Path) -> Iterator[None]:
+    """Hold an exclusive lock on the report folder itself (flock(2) on its directory), so that two
+    runs writing into one folder install their files one after the other. No lock file is left
+    behind. Where flock is not available (Windows) the files are still each replaced atomically."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        yield
+        return
+    fd = os.open(folder, os.O_RDONLY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)  # closing the last descriptor releases the lock
+
+
+def _install(out: Path, files: dict[str, str | dict[str, Any]],
+             stale: dict[str, Callable[[Path], bool]] | None = None) -> dict[str, Path]:
+    """Write ``files`` (name -> text, or a JSON document) into ``out`` as one unit.
+
+    Each file is written in full into a temporary folder inside ``out`` (same file system), then,
+    under the folder's lock, every one is renamed into place (rename(2) replaces atomically) and each
+    file named in ``stale`` whose test says it does not belong with them is deleted. A second run
+    into the same folder waits for the lock, so the folder always ends with the files of one run;
+    nothing temporary is left behind, even on error.
+    """
+    out.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=".refnorm-report-", dir=out))
+    try:
+        staged = {}
+        for name, content in files.items():
+            if isinstance(content, str):
+                data = content.encode("utf-8")  # the renderers leave no lone surrogate (conformance.text)
+                (stage / name).write_bytes(data)
+                mask = os.umask(0)
+                os.umask(mask)
+                os.chmod(stage / name, 0o666 & ~mask)
+            else:
+                write_json_atomic(stage / name, content)
+            staged[name] = stage / name
+        paths = {}
+        with _folder_lock(out):
+            for name, src in staged.items():
+                os.replace(src, out / name)
+                paths[name] = out / name
+            for name, is_stale in (stale or {}).items():
+                if (out / name).is_file() and is_stale(out / name):
+                    with contextlib.suppress(FileNotFoundError):
+                        (out / name).unlink()
+        return paths
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
 
 
 def gather_peers(doc: dict[str, Any], enabled: bool | None, *, stored: Iterable[str | os.PathLike] = (),
@@ -60,17 +112,27 @@ def gather_peers(doc: dict[str, Any], enabled: bool | None, *, stored: Iterable[
 
 def write_report(doc: dict[str, Any], out_dir: str | os.PathLike, *, peers: dict[str, Any] | None = None,
                  peers_note: str = "") -> dict[str, Path]:
-    """Write report.html, report.md, results.json (and peers.json when given) into out_dir."""
+    """Write report.html, report.md, results.json (and peers.json when given) into out_dir, as one unit.
+
+    Everything is rendered before anything is written; the files then replace those of an earlier
+    run together (see _install). Without peers, a peers.json already in the folder stays only if it
+    was made for these results (same op, seed and cases): it is never left beside results it does
+    not belong to.
+    """
     from .html import render_html
     from .markdown import render_markdown
     from .plots import all_plots
-    from .peers import write_peers
 
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    paths = {"results": write_json_atomic(out / FILES["results"], doc)}
+    files: dict[str, str | dict[str, Any]] = {
+        FILES["results"]: doc,
+        FILES["html"]: render_html(doc, all_plots(doc), peers, peers_note),
+        FILES["markdown"]: render_markdown(doc, peers, peers_note),
+    }
     if peers is not None:
-        paths["peers"] = write_peers(out / FILES["peers"], peers)
-    paths["html"] = _write_text(out / FILES["html"], render_html(doc, all_plots(doc), peers, peers_note))
-    paths["markdown"] = _write_text(out / FILES["markdown"], render_markdown(doc, peers, peers_note))
-    return paths
+        files[FILES["peers"]] = peers
+    from .peers import load_peers
+
+    stale = {} if peers is not None else {FILES["peers"]: lambda p: load_peers(p, doc)[0] is None}
+    written = _install(out, files, stale)
+    return {key: written[name] for key, name in FILES.items() if name in written}

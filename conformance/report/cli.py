@@ -103,10 +103,8 @@ def cmd_report(args: argparse.Namespace, argv: Sequence[str]) -> int:
     src = Path(args.results)
     try:
         doc = load(src)
-    except FileNotFoundError:
-        raise UsageError(f"RESULTS.json: {src} does not exist")
-    except (OSError, ValueError) as e:  # a folder, unreadable, not JSON, or another schema or version
-        raise UsageError(f"RESULTS.json: {src}: {e}")
+    except ValueError as e:  # conformance.documents.DocumentError: names the file and the field
+        raise UsageError(f"RESULTS.json: {e}") from None
     out = _report_folder(args.out, "--out")
     _need_plots("refnorm report")
     stored = [out / FILES["peers"], src.parent / FILES["peers"]]

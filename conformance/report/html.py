@@ -14,6 +14,7 @@ from html import escape
 from typing import Any, Iterable
 
 from ..results import as_float
+from ..text import visible
 from . import content as C
 from .peers import compare, headline, own_counts, ratio_text
 from .plots import Plot
@@ -80,7 +81,10 @@ footer { color: var(--mute); font-size: 13px; margin-top: 36px; border-top: 1px 
 
 
 def _e(v: Any) -> str:
-    return escape(str(v), quote=True)
+    """Every value of the page, ours or from a kernel or a file: control characters and lone surrogates
+    shown as escapes (conformance.text.visible), then &, <, >, " and ' as character references, so a
+    value is text in an element and a whole attribute value in double quotes (HTML Living Standard §13.1)."""
+    return escape(visible(v), quote=True)
 
 
 def _json(v: Any) -> str:

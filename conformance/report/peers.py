@@ -19,7 +19,6 @@ from __future__ import annotations
 import importlib
 import importlib.metadata
 import importlib.util
-import json
 import math
 import multiprocessing
 import os
@@ -219,13 +218,13 @@ def load_peers(path: str | os.PathLike, doc: dict[str, Any]) -> tuple[dict[str, 
 
     Returns (peers, "") or (None, why it cannot be used).
     """
+    from ..documents import PEERS, DocumentError, read
+
     p = Path(path)
-    if not p.is_file():
-        return None, f"{p} does not exist"
-    with open(p) as f:
-        peers = json.load(f)
-    if peers.get("schema") != PEERS_SCHEMA or peers.get("schema_version") != PEERS_VERSION:
-        return None, f"{p}: not a refnorm peers file of version {PEERS_VERSION}"
+    try:
+        peers = read(p, PEERS)
+    except DocumentError as e:  # truncated, not JSON, another schema: a note, as for a mismatched one
+        return None, f"{e}; not used"
     if peers.get("interrupted"):
         return None, f"{p} holds an interrupted run of the libraries"
     want = [c["id"] for c in _cases_run(doc)]
