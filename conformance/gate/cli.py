@@ -198,15 +198,15 @@ def add_commands(subparsers) -> None:
     d.set_defaults(func=cmd_diff)
 
 
-#: Room left in a file name for the "-N" of a repeated name and the ".json" suffix.
-_NAME_ROOM = 230
+#: Longest NAME of a results file NAME.json, in bytes: room is left for the "-N" of a repeated name and the ".json" suffix.
+MAX_NAME = 230
 
 
 def result_name(kernel_name: str, taken: set[str]) -> str:
     """A file name (without .json) for a kernel's results: its name with anything but [A-Za-z0-9._-]
     made '_', cut to fit a file name (a cut name ends in a digest of the whole), '-2', '-3', ...
     added when another kernel has the name already."""
-    base = fit_name(re.sub(r"[^A-Za-z0-9._-]+", "_", kernel_name).strip("._") or "kernel", "", _NAME_ROOM)
+    base = fit_name(re.sub(r"[^A-Za-z0-9._-]+", "_", kernel_name).strip("._") or "kernel", "", MAX_NAME)
     name, i = base, 2
     while name in taken:
         name, i = f"{base}-{i}", i + 1
