@@ -39,7 +39,7 @@ EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 #:                                     lines naming them, printed after the summary
 #:   verdict_lines(args, doc) -> [str] lines printed after the verdict (the gate's decision)
 #:   exit_code(args, doc, code) -> int after every artefact is written: the exit status (the gate's)
-EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli")
+EXTENSIONS = ("conformance.adapters.cli", "conformance.report.cli", "conformance.gate.cli")
 
 
 def _extensions():
@@ -101,8 +101,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def check_spec(spec: str, op: str | None) -> str:
-    """The spec to load: a module alone with --op means module:op."""
-    return f"{spec}:{op}" if ":" not in spec and op else spec
+    """The spec to load: a module alone with --op means module:op (before any ?parameters)."""
+    base, q, query = spec.partition("?")
+    return f"{base}:{op}{q}{query}" if ":" not in base and op else spec
 
 
 def resolve_kernel(spec: str, op: str | None, loaded: Kernel | None = None) -> tuple[Kernel, str]:
