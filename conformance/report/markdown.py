@@ -118,7 +118,8 @@ def render_markdown(doc: dict[str, Any], peers: dict[str, Any] | None = None, pe
     k = doc.get("kernel", {})
     run = doc.get("run", {})
     lines = [f"## refnorm: **{doc['verdict'].upper()}** — {k.get('name', '')}", "",
-             f"{k.get('op', '')} · {', '.join(run.get('dtypes', k.get('dtypes', [])))} · tier {run.get('tier', '')} · "
+             f"{k.get('op', '')} · {', '.join(run.get('dtypes', k.get('dtypes', [])))} · "
+             + (f"{C.device_text(doc)} · " if C.device_text(doc) else "") + f"tier {run.get('tier', '')} · "
              f"seed {run.get('seed', '')} · {C.counts_line(doc)}", "",
              f"**{C.worst_line(doc)}**", ""]
     if C.gate_line(doc):
