@@ -292,18 +292,18 @@ def split_spec(spec: str) -> tuple[str, str, dict[str, str]]:
     if not target or not attr:
         raise KernelError(f"kernel spec {spec!r} is incomplete; expected module:attr or path/to/file.py:attr")
     params: dict[str, str] = {}
+    if q and not query.strip():
+        raise KernelError(f"kernel spec {spec!r}: nothing after '?'; expected key=value pairs")
     if q:
         for item in query.split(","):
             key, eq, value = item.partition("=")
             key, value = key.strip(), value.strip()
-            if not eq or not key.isidentifier() or not value:
+            if not eq or not key.isidentifier() or not value or "?" in value or "=" in value:
                 raise KernelError(f"kernel spec {spec!r}: parameter {item!r} is not key=value (expected "
                                   "module:factory?key=value,key=value, e.g. ?device=cuda:0)")
             if key in params:
                 raise KernelError(f"kernel spec {spec!r}: parameter {key!r} is given twice")
             params[key] = value
-        if not params:
-            raise KernelError(f"kernel spec {spec!r}: nothing after '?'; expected key=value pairs")
     return target, attr, params
 
 
