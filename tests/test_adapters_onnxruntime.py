@@ -329,6 +329,25 @@ def test_bad_provider_is_a_usage_error(argv, words, capsys):
     assert all(w in err for w in words), err
 
 
+def test_another_provider_runs_alone_and_is_declared_unverified(capsys):
+    """A provider other than the CPU's: the CPU fallback is disabled, so a provider that cannot run
+    the operator fails to load (exit 2, one line, no ONNX Runtime log lines), and its declaration is
+    the CPU's with worst-case summation, marked NOT VERIFIED. onnxruntime's CPU wheel also ships the
+    Azure provider, which runs no normalization operator: the path needs no accelerator."""
+    if "AzureExecutionProvider" not in _ort().get_available_providers():
+        pytest.skip("this onnxruntime build has no second provider to try")
+    rt = ort_ep._Runtime("rms_norm", "AzureExecutionProvider", 0)
+    assert not rt.verified
+    p, cpu = rt.precision("float16"), ort_ep._cpu_precision("rms_norm", "float16", None)
+    assert p.summation == "worst" and p.accumulate == cpu.accumulate
+    assert "NOT VERIFIED for AzureExecutionProvider" in rt.notes("x", {})
+    assert cli.main(["check", f"{SPEC}:layer_norm", "--provider", "AzureExecutionProvider", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("refnorm: error: AzureExecutionProvider runs LayerNormalization "
+                                                    "in none of"), err
+    assert "fallback to CPU EP has been explicitly disabled" in err
+
+
 @pytest.mark.parametrize("spec, words", [
     (f"{SPEC}:layer_norm?threads=-1", ["threads", "whole number"]),
     (f"{SPEC}:layer_norm?threads=many", ["threads", "whole number"]),
@@ -391,3 +410,14 @@ def test_report_header_names_the_device(tmp_path):
     assert "device CPUExecutionProvider" in md.splitlines()[2]
     assert "device CPUExecutionProvider" in html.split('<div class="who">', 1)[1].split("</div>", 1)[0]
     assert "Not checked: gradients (no backward entry point)" in md or "gradients (no backward entry point)" in html
+
+
+def test_threads_parameter_sets_the_session():
+    """threads=1 runs a single intra-op thread (recorded in the notes); LayerNormalization's rows are
+    independent sums, so the bits equal the default's (common practice: per-row work split over threads)."""
+    one = load_kernel(f"{SPEC}:layer_norm?threads=1")
+    assert "intra-op threads 1" in one.notes
+    x = np.random.default_rng(8).standard_normal((64, 300)).astype(np.float32)
+    a = one.forward(x=x, eps=1e-5, normalized_shape=(300,))
+    b = ort_ep.layer_norm().forward(x=x, eps=1e-5, normalized_shape=(300,))
+    assert all(np.array_equal(a[k], b[k]) for k in ("y", "mean", "rstd"))

@@ -189,7 +189,9 @@ class _Runtime:
 
     def options(self):
         so = self.ort.SessionOptions()
-        so.log_severity_level = 3  # errors only: ONNX Runtime's warnings would reach refnorm's output
+        # fatal only: a session that fails raises, and the message is in the exception; ONNX Runtime's own
+        # log lines would reach refnorm's output
+        so.log_severity_level = 4
         if self.threads:
             so.intra_op_num_threads = self.threads
         if self.provider != DEFAULT_PROVIDER:
@@ -276,8 +278,11 @@ class _Runtime:
             else:
                 ok.append(dt)
         if not ok:
+            by_reason: dict[str, list[str]] = {}
+            for d, why in dropped.items():
+                by_reason.setdefault(why, []).append(d)
             raise KernelError(f"{self.provider} runs {self.operator.name} in none of {', '.join(dtypes)}: "
-                              + "; ".join(f"{d}: {w}" for d, w in dropped.items()))
+                              + "; ".join(f"{', '.join(ds)}: {why}" for why, ds in by_reason.items()))
         return tuple(ok), dropped
 
 
