@@ -63,7 +63,9 @@ What ONNX Runtime 1.32's CPUExecutionProvider computes, measured against the flo
   batch variance, eps inside the square root, no saved statistics (opset 14 removed them). The
   float16 x with float32 scale/bias/statistics form is accepted (batch_norm_mixed).
 - InstanceNormalization refuses rank-2 input (the adapter runs (N, C) as (N, C, 1)) and has no
-  float64 kernel; bfloat16 is implemented for LayerNormalization only.
+  float64 kernel; bfloat16 is implemented for LayerNormalization only. For float16 the batch,
+  instance and group norm graphs run in float32 between inserted Cast nodes: each output
+  (running statistics included) is rounded to float16 once.
 
 For a provider other than the CPU's the declaration is the CPU's with worst-case summation
 bounds, marked NOT VERIFIED in the notes, and the CPU fallback is disabled
