@@ -43,7 +43,7 @@ EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 #:   exit_code(args, doc, code) -> int after every artefact is written: the exit status (the gate's)
 #: Another command that makes a results document (`refnorm score`) runs the same steps with its own
 #: hooks: prepare_outputs(args, hooks) before, finish(args, doc, hooks) after.
-EXTENSIONS = ("conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli")
+EXTENSIONS = ("conformance.adapters.cli", "conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli")
 
 
 def _extensions():
@@ -105,8 +105,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def check_spec(spec: str, op: str | None) -> str:
-    """The spec to load: a module alone with --op means module:op."""
-    return f"{spec}:{op}" if ":" not in spec and op else spec
+    """The spec to load: a module alone with --op means module:op (before any ?parameters)."""
+    base, q, query = spec.partition("?")
+    return f"{base}:{op}{q}{query}" if ":" not in base and op else spec
 
 
 def resolve_kernel(spec: str, op: str | None, loaded: Kernel | None = None) -> tuple[Kernel, str]:

@@ -31,6 +31,8 @@ __all__ = [
     "KernelError",
     "load_kernel",
     "unchecked_outputs",
+    "split_spec",
+    "with_spec_params",
 ]
 
 ENTRY_POINTS = ("forward", "forward_eval", "backward", "backward_eval")
@@ -132,6 +134,8 @@ class Kernel:
     ``conventions.running == "return"``. ``grads`` is a subset of (dx, dweight, dbias).
     ``precision`` maps each supported storage dtype to its Precision (a single
     Precision applies to every dtype in ``dtypes``).
+    ``device`` is where the kernel runs, as its library names it (torch's "cpu" or "cuda:0",
+    an ONNX Runtime execution provider); None when not declared (a host-side kernel).
     """
 
     name: str
@@ -152,6 +156,7 @@ class Kernel:
     conventions: Conventions = field(default_factory=Conventions)
     precision: Any = None
     notes: str = ""
+    device: str | None = None
 
     def __post_init__(self) -> None:
         _validate(self)
@@ -190,6 +195,7 @@ class Kernel:
             "precision": {d: self.precision_for(d).as_dict() for d in self.dtypes},
             "notes": self.notes,
             "unchecked": unchecked_outputs(self),
+            "device": self.device,
         }
 
 
@@ -229,6 +235,8 @@ def _validate(k: Kernel) -> None:
         bad(f"notes is {type(k.notes).__name__}, expected a string")
     if not k.dtypes:
         bad("dtypes is empty, expected at least one storage dtype")
+    if k.device is not None and not (isinstance(k.device, str) and k.device.strip()):
+        bad(f"device is {k.device!r}, expected a non-empty string (e.g. 'cpu', 'cuda:0') or None")
     for d in k.dtypes:
         if d not in dtypes.FORMATS:
             bad(f"dtype {d!r} is not one of {', '.join(dtypes.FORMATS)}")
@@ -404,17 +412,77 @@ def call_with(fn: Callable, kwargs: dict[str, Any]) -> Any:
     return fn(**{k: v for k, v in kwargs.items() if k in names})
 
 
-def load_kernel(spec: str) -> Kernel:
-    """Load a Kernel from ``module:attr`` or ``path/to/file.py:attr``.
+def split_spec(spec: str) -> tuple[str, str, dict[str, str]]:
+    """``target:attr?key=value,key=value`` -> (target, attr, {key: value}).
 
-    ``attr`` may name a Kernel or a callable returning one (a factory, so that a
-    heavy import happens only when the kernel is used).
+    The parameters (after the first ``?``) are split off before the target, so a value may hold
+    a colon (``device=cuda:0``). Raises KernelError for a malformed spec, naming the part.
     """
-    if ":" not in spec:
+    base, q, query = spec.partition("?")
+    if ":" not in base:
         raise KernelError(f"kernel spec {spec!r} has no ':'; expected module:attr or path/to/file.py:attr")
-    target, _, attr = spec.rpartition(":")
+    target, _, attr = base.rpartition(":")
     if not target or not attr:
         raise KernelError(f"kernel spec {spec!r} is incomplete; expected module:attr or path/to/file.py:attr")
+    params: dict[str, str] = {}
+    if q and not query.strip():
+        raise KernelError(f"kernel spec {spec!r}: nothing after '?'; expected key=value pairs")
+    if q:
+        for item in query.split(","):
+            key, eq, value = item.partition("=")
+            key, value = key.strip(), value.strip()
+            if not eq or not key.isidentifier() or not value or "?" in value or "=" in value:
+                raise KernelError(f"kernel spec {spec!r}: parameter {item!r} is not key=value (expected "
+                                  "module:factory?key=value,key=value, e.g. ?device=cuda:0)")
+            if key in params:
+                raise KernelError(f"kernel spec {spec!r}: parameter {key!r} is given twice")
+            params[key] = value
+    return target, attr, params
+
+
+def with_spec_params(spec: str, **params: str) -> str:
+    """The spec with parameters added; a parameter the spec already sets to another value is an error."""
+    _, _, have = split_spec(spec)
+    for k, v in params.items():
+        if k in have and have[k] != v:
+            raise KernelError(f"kernel spec {spec!r} sets {k}={have[k]}, and {k}={v} was asked for as well")
+    merged = {**have, **params}
+    base = spec.partition("?")[0]
+    return base + ("?" + ",".join(f"{k}={v}" for k, v in merged.items()) if merged else "")
+
+
+def _call_factory(spec: str, attr: str, factory: Callable, params: dict[str, str]) -> Any:
+    """factory(**params), after checking that it takes each parameter (values stay strings: the factory
+    converts and validates them)."""
+    if params:
+        try:
+            sig = inspect.signature(factory)
+        except (TypeError, ValueError):
+            sig = None
+        if sig is not None and not any(p.kind is inspect.Parameter.VAR_KEYWORD for p in sig.parameters.values()):
+            names = [n for n, p in sig.parameters.items()
+                     if p.kind in (inspect.Parameter.POSITIONAL_OR_KEYWORD, inspect.Parameter.KEYWORD_ONLY)]
+            unknown = [k for k in params if k not in names]
+            if unknown:
+                raise KernelError(f"kernel spec {spec!r}: {attr}() takes no parameter {', '.join(unknown)} "
+                                  f"(it takes: {', '.join(names) or 'none'})")
+    try:
+        return factory(**params)
+    except KernelError:
+        raise
+    except Exception as e:
+        shown = ", ".join(f"{k}={v!r}" for k, v in params.items())
+        raise KernelError(f"kernel spec {spec!r}: calling {attr}({shown}) failed: {type(e).__name__}: {e}") from e
+
+
+def load_kernel(spec: str) -> Kernel:
+    """Load a Kernel from ``module:attr`` or ``path/to/file.py:attr``, optionally ``...:attr?key=value,...``.
+
+    ``attr`` may name a Kernel or a callable returning one (a factory, so that a
+    heavy import happens only when the kernel is used). Parameters after ``?`` are passed to the
+    factory as keyword arguments with string values (``conformance.adapters.torch_device:layer_norm?device=cuda``).
+    """
+    target, attr, params = split_spec(spec)
     if target.endswith(".py") or "/" in target or "\\" in target:
         path = Path(target)
         if not path.is_file():
@@ -440,13 +508,11 @@ def load_kernel(spec: str) -> Kernel:
         if not hasattr(obj, part):
             raise KernelError(f"kernel spec {spec!r}: {target} has no attribute {attr!r}")
         obj = getattr(obj, part)
+    if params and (isinstance(obj, Kernel) or not callable(obj)):
+        raise KernelError(f"kernel spec {spec!r}: {attr} is not a factory, so it takes no parameters "
+                          f"({', '.join(params)})")
     if not isinstance(obj, Kernel) and callable(obj):
-        try:
-            obj = obj()
-        except KernelError:
-            raise
-        except Exception as e:
-            raise KernelError(f"kernel spec {spec!r}: calling {attr}() failed: {type(e).__name__}: {e}") from e
+        obj = _call_factory(spec, attr, obj, params)
     if isinstance(obj, (list, tuple)) and obj and all(isinstance(o, Kernel) for o in obj):
         raise KernelError(f"kernel spec {spec!r} names {len(obj)} kernels; name one (e.g. {attr}[0] is not "
                           "supported: give each its own attribute)")

@@ -173,7 +173,7 @@ def environment() -> dict[str, Any]:
         "processor": _cpu_name(),
         "cpu_count": os.cpu_count(),
     }
-    for mod in ("ml_dtypes", "torch", "tensorflow", "keras"):
+    for mod in ("ml_dtypes", "torch", "tensorflow", "keras", "onnx", "onnxruntime"):
         m = sys.modules.get(mod)
         if m is not None:
             env[mod] = getattr(m, "__version__", "unknown")

@@ -202,6 +202,7 @@ def batch_norm() -> Kernel:
         dtypes=DTYPES, conventions=Conventions(momentum_convention="old", running_var_estimator="biased",
                                                running="return"),
         precision=_precision(), momentum_none=False,
+        device="cpu",
         notes=_notes(keras, tf, "keras.layers.BatchNormalization; momentum is Keras's own (weights the old value)"),
     )
 
@@ -231,7 +232,7 @@ def layer_norm() -> Kernel:
 
     return Kernel(name="keras-cpu layer_norm", op="layer_norm", forward=forward, backward=backward,
                   dtypes=DTYPES, precision=_precision(),
-                  notes=_notes(keras, tf, "keras.layers.LayerNormalization(axis=trailing axes)"))
+                  device="cpu", notes=_notes(keras, tf, "keras.layers.LayerNormalization(axis=trailing axes)"))
 
 
 # --------------------------------------------------------------------------- group and instance norm
@@ -259,7 +260,7 @@ def _group_kernel(name: str, op: str, groups_of) -> Kernel:
 
     return Kernel(name=name, op=op, forward=forward, backward=backward, dtypes=DTYPES, precision=_precision(),
                   updates_running=False, momentum_none=False,
-                  notes=_notes(keras, tf, "keras.layers.GroupNormalization"
+                  device="cpu", notes=_notes(keras, tf, "keras.layers.GroupNormalization"
                                + (" (groups=-1: instance normalization, no running statistics)"
                                   if op == "instance_norm" else "")))
 
@@ -310,6 +311,7 @@ def rms_norm() -> Kernel:
 
     return Kernel(name="keras-cpu rms_norm", op="rms_norm", forward=forward, backward=backward, dtypes=DTYPES,
                   precision=_precision(extra_rounding=("y",), fp16_sums=("dbias",)),
+                  device="cpu",
                   notes=_notes(keras, tf, "keras.layers.RMSNormalization; no bias in Keras (a given bias is "
                                "added after the layer, y + bias, and differentiated with it)"))
 

@@ -121,10 +121,11 @@ def _is_path_target(target: str) -> bool:
 
 def loadable_spec(spec: str) -> str:
     """The spec with a file path made absolute (for comparing specs, and for worker processes)."""
-    target, sep, attr = spec.rpartition(":")
+    base, q, query = spec.partition("?")  # parameters may hold a colon (device=cuda:0)
+    target, sep, attr = base.rpartition(":")
     if sep and _is_path_target(target):
         try:
-            return f"{Path(target).resolve()}:{attr}"
+            return f"{Path(target).resolve()}:{attr}{q}{query}"
         except (OSError, ValueError, RuntimeError):  # a NUL, a name too long, a symlink loop: kept as given
             return spec
     return spec

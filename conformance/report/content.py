@@ -32,6 +32,7 @@ __all__ = [
     "Gaps",
     "coverage_gaps",
     "kernel_facts",
+    "device_text",
     "environment_facts",
     "caution_text",
     "counts_line",
@@ -354,10 +355,17 @@ def coverage_gaps(doc: dict[str, Any]) -> Gaps:
                 tier=str(run.get("tier", "")))
 
 
+def device_text(doc: dict[str, Any]) -> str:
+    """'device cuda:0' where the kernel declares where it runs, else '' (for the report's header)."""
+    dev = doc.get("kernel", {}).get("device")
+    return f"device {dev}" if dev else ""
+
+
 def kernel_facts(doc: dict[str, Any]) -> list[tuple[str, str]]:
     """(label, text) pairs: the kernel's declaration, precision per dtype and conventions."""
     k = doc.get("kernel", {})
     facts = [("kernel", str(k.get("name", ""))), ("op", str(k.get("op", ""))),
+             ("device", str(k.get("device") or "not declared")),
              ("entry points", ", ".join(k.get("entry_points", []))),
              ("outputs", ", ".join(k.get("outputs", []))), ("gradients", ", ".join(k.get("grads", [])) or "none"),
              ("dtypes", ", ".join(k.get("dtypes", []))), ("layouts", ", ".join(k.get("layouts", [])))]
@@ -388,12 +396,14 @@ def environment_facts(doc: dict[str, Any], peers: dict[str, Any] | None = None) 
     run = doc.get("run", {})
     facts = [(name, str(env[key])) for key, name in
              (("refnorm", "refnorm"), ("python", "Python"), ("numpy", "NumPy"), ("ml_dtypes", "ml_dtypes"),
-              ("torch", "PyTorch"), ("tensorflow", "TensorFlow"), ("keras", "Keras")) if key in env]
+              ("torch", "PyTorch"), ("tensorflow", "TensorFlow"), ("keras", "Keras"), ("onnx", "ONNX"),
+              ("onnxruntime", "ONNX Runtime")) if key in env]
     if peers:
         have = {n for n, _ in facts}
         for lib in peers.get("libraries", []):
             for mod, ver in (lib.get("versions") or {}).items():
-                name = {"torch": "PyTorch", "tensorflow": "TensorFlow", "keras": "Keras"}.get(mod, mod)
+                name = {"torch": "PyTorch", "tensorflow": "TensorFlow", "keras": "Keras", "onnx": "ONNX",
+                        "onnxruntime": "ONNX Runtime"}.get(mod, mod)
                 if name not in have and ver:
                     facts.append((name, f"{ver} (peer run)"))
                     have.add(name)

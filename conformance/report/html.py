@@ -293,7 +293,8 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
     k = doc.get("kernel", {})
     run = doc.get("run", {})
     who = (f'{_e(k.get("name", ""))} · {_e(k.get("op", ""))} · {_e(", ".join(run.get("dtypes", k.get("dtypes", []))))}'
-           f' · tier {_e(run.get("tier", ""))} · seed {_e(run.get("seed", ""))}')
+           + (f' · {_e(C.device_text(doc))}' if C.device_text(doc) else "")
+           + f' · tier {_e(run.get("tier", ""))} · seed {_e(run.get("seed", ""))}')
     env = doc.get("environment", {})
     title = f'refnorm report: {k.get("name", "")} — {doc["verdict"]}'
     parts = [

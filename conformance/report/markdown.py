@@ -161,9 +161,10 @@ def render_markdown(doc: dict[str, Any], peers: dict[str, Any] | None = None, pe
     k = doc.get("kernel", {})
     run = doc.get("run", {})
     dtypes = ", ".join(run.get("dtypes", k.get("dtypes", [])))
+    device = C.device_text(doc)
     lines = [f"## refnorm: **{md(doc['verdict'].upper())}** — {md(k.get('name', ''))}", "",
-             f"{md(k.get('op', ''))} · {md(dtypes)} · tier {md(run.get('tier', ''))} · "
-             f"seed {md(run.get('seed', ''))} · {md(C.counts_line(doc))}", "",
+             f"{md(k.get('op', ''))} · {md(dtypes)} · " + (f"{md(device)} · " if device else "")
+             + f"tier {md(run.get('tier', ''))} · seed {md(run.get('seed', ''))} · {md(C.counts_line(doc))}", "",
              f"**{md(C.worst_line(doc), None)}**", ""]
     if C.gate_line(doc):
         lines[3:3] = ["", md(C.gate_line(doc), None)]

@@ -1,4 +1,5 @@
-"""Established libraries side by side: the same cases and seed through torch CPU and TF/Keras CPU.
+"""Established libraries side by side: the same cases and seed through torch CPU, TF/Keras CPU and
+ONNX Runtime's CPU execution provider (forward outputs only: it has no gradients).
 
 For a results document of a kernel, each library's adapter for the same op
 (conformance.adapters.<module>:<op>, a factory returning a Kernel) runs the
@@ -41,9 +42,10 @@ class Library:
 
     spawn=True starts each worker fresh from the adapter's spec (seconds of import per worker, but
     nothing inherited); spawn=False forks from this process, where the adapter is already loaded.
-    Both libraries spawn: TensorFlow is not safe to fork once its runtime has started, and torch's
+    Every library spawns: TensorFlow is not safe to fork once its runtime has started, and torch's
     CPU kernels can deadlock in a child forked after its intra-op thread pool has run (seen here:
-    peer cases forked from a process that had run torch ops hung until their timeout).
+    peer cases forked from a process that had run torch ops hung until their timeout); ONNX Runtime
+    keeps thread pools too (spawned for the same reason, not seen to hang).
     """
 
     name: str
@@ -55,10 +57,11 @@ class Library:
 LIBRARIES = (
     Library("torch CPU", "conformance.adapters.torch_cpu", ("torch",), spawn=True),
     Library("TF/Keras CPU", "conformance.adapters.keras_cpu", ("tensorflow", "keras"), spawn=True),
+    Library("ONNX Runtime CPU", "conformance.adapters.onnxruntime_ep", ("onnx", "onnxruntime"), spawn=True),
 )
 
 
-_DISTRIBUTIONS = {"tensorflow": ("tensorflow", "tensorflow-cpu")}
+_DISTRIBUTIONS = {"tensorflow": ("tensorflow", "tensorflow-cpu"), "onnxruntime": ("onnxruntime", "onnxruntime-gpu")}
 
 
 def _versions(mods: Iterable[str]) -> dict[str, str]:
