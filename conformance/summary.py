@@ -36,13 +36,13 @@ def unchecked_names(doc: dict[str, Any]) -> list[str]:
     names: list[str] = []
     for u in doc.get("kernel", {}).get("unchecked", []):
         if u["output"] not in names:
-            names.append(u["output"])
+            names.append(visible(u["output"]))
     return names
 
 
 def unchecked_lines(doc: dict[str, Any]) -> list[str]:
     """One line per unchecked output and reason: 'not checked: running_var (train): updates_running=False: ...'."""
-    return [f"not checked: {u['output']} ({'/'.join(u.get('modes', [])) or 'any mode'}): {u['reason']}"
+    return [f"not checked: {visible(u['output'])} ({'/'.join(u.get('modes', [])) or 'any mode'}): {visible(u['reason'])}"
             for u in doc.get("kernel", {}).get("unchecked", [])]
 
 
@@ -66,14 +66,14 @@ def incomplete_lines(doc: dict[str, Any], shown: int = 5) -> list[str]:
     selected cases exactly once (up to ``shown`` ids of each kind)."""
     def ids(xs: list[str]) -> str:
         more = f" and {len(xs) - shown} more" if len(xs) > shown else ""
-        return ", ".join(xs[:shown]) + more
+        return ", ".join(visible(x) for x in xs[:shown]) + more
 
     out = []
     why = (doc.get("run") or {}).get("interrupted")
     cov = doc.get("coverage") or {}
     missing = cov.get("missing") or []
     if why:
-        out.append(f"interrupted by {why}: {len(missing)} of {cov.get('selected', '?')} selected case(s) have no "
+        out.append(f"interrupted by {visible(why)}: {len(missing)} of {cov.get('selected', '?')} selected case(s) have no "
                    "result")
     elif missing:
         out.append(f"incomplete: no result for {len(missing)} selected case(s): {ids(missing)}")

@@ -16,6 +16,8 @@ from pathlib import Path
 import jsonschema
 import pytest
 
+from conformance.report.markdown import md as md_escape
+
 from conformance import Conventions, Kernel, KernelError, Precision
 from conformance.cli import EXIT_USAGE, main
 from conformance.kernel import unchecked_outputs
@@ -198,4 +200,4 @@ def test_unchecked_running_statistics_reach_the_verdict_the_document_and_the_rep
     assert any("leaves unchecked: running_mean" in s for s in gap_sentences(gaps))
     paths = write_report(doc, tmp_path, peers=None, peers_note="disabled for this test")
     md = paths["markdown"].read_text()
-    assert "running_var (train): updates_running=False" in md
+    assert md_escape("running_var (train): updates_running=False") in md  # escaped as all Markdown text

@@ -24,7 +24,7 @@ from conformance.cases.model import STRIDE_KINDS, VALUE_KINDS
 from conformance.kernel import ENTRY_POINTS, LAYOUTS, Conventions, Kernel, KernelError, Precision, call_with
 from conformance.report.content import coverage_gaps
 from conformance.report.html import render_html
-from conformance.report.markdown import render_markdown
+from conformance.report.markdown import md as md_escape, render_markdown
 from conformance.results import build_document
 from conformance.run.execute import execute_case
 from conformance.tolerances import OUTPUTS, derive_bounds
@@ -222,7 +222,7 @@ def test_a_run_reports(name):
     assert gaps.longest_reduction == max(c.group_length for c in cases)
     md = render_markdown(doc)
     html = render_html(doc, ())
-    assert k.name in md and f'data-op="{name}"' in html
+    assert md_escape(k.name) in md and f'data-op="{name}"' in html
 
 
 # ------------------------------------------------------------------ no op names outside the descriptions
@@ -266,4 +266,4 @@ def test_report_of_an_op_this_version_does_not_know():
     doc["kernel"]["op"] = "future_norm"
     gaps = coverage_gaps(doc)
     assert gaps.layouts_undeclared == [] and gaps.modes_absent == [] and gaps.longest_reduction is None
-    assert "future_norm" in render_markdown(doc)
+    assert md_escape("future_norm") in render_markdown(doc)  # Markdown shows text escaped

@@ -57,9 +57,11 @@ def target_kernel(op: str, dtypes: Sequence[str], *, precision: Precision | Mapp
     spec = ops.get(op)
     conv = conventions or Conventions()
     entries = tuple(entry_points) if entry_points else spec.entry_points
-    outputs = ("y",) + tuple(conv.saved)
-    if conv.running == "return":
-        outputs += spec.running_outputs
+    outputs: tuple[str, ...] = ("y",)
+    if "forward" in entries:  # without a forward, the saved statistics come from the oracle (conformance.kernel)
+        outputs += tuple(conv.saved)
+        if conv.running == "return":
+            outputs += spec.running_outputs
     return Kernel(name=name or f"target {op} kernel (exported vectors)", op=op, outputs=outputs,
                   dtypes=tuple(dtypes), conventions=conv, precision=precision,
                   notes="runs on a target outside Python: checked through refnorm export and refnorm score",
