@@ -71,7 +71,7 @@ import numpy as np
 from . import _scaled
 from ._moments import Moments, group_size, mean_square, moments, sum_keep
 from ._parallel import chunk_bounds, run_chunks
-from ._twoproduct import centered_product
+from ._twoproduct import OFFSET, centered_product
 
 
 @dataclass(frozen=True)
@@ -488,10 +488,6 @@ def fused_forward(
         return y, Stats(mean=None, var=var, rstd=rstd)
 
 
-#: A group whose g = dy * weight has a mean above _OFFSET times its spread (rms of g - mean(g)) is
-#: centred from the exact product (refnorm._twoproduct): below it, rounding g first leaves an
-#: error of at most about 2 u (_OFFSET + 1) = 2.3e-13 of max |g - mean(g)|.
-_OFFSET = 2.0**10
 
 
 def _first_along(w: np.ndarray, red: tuple[int, ...]) -> np.ndarray:
@@ -531,8 +527,8 @@ def _refine_offset(gc: np.ndarray, dyc: np.ndarray, wc: np.ndarray | None, scale
 
     gc holds s (g - mean(g)) formed from the rounded product (s = ``scale`` or 1), gmean =
     mean(g), and k = mean((g - mean(g)) xhat) in units of g, or None. A group is re-centred when
-    |mean(g)| > _OFFSET rms(g - mean(g)). With the batch statistics mean(xhat^2) = var r^2 <= 1, so
-    |k| <= rms(g - mean(g)) (Cauchy-Schwarz) and a group with |mean(g)| <= _OFFSET |k| never is:
+    |mean(g)| > OFFSET rms(g - mean(g)). With the batch statistics mean(xhat^2) = var r^2 <= 1, so
+    |k| <= rms(g - mean(g)) (Cauchy-Schwarz) and a group with |mean(g)| <= OFFSET |k| never is:
     the sum of squares that measures the spread is only taken where some group is not ruled out
     so (k None, for given statistics: always). Each group's decision and bits depend on its own
     data alone. The re-centred groups get s * centered_product(dy, weight) in place; returns
@@ -542,11 +538,11 @@ def _refine_offset(gc: np.ndarray, dyc: np.ndarray, wc: np.ndarray | None, scale
     if k is None:
         maybe = True
     else:
-        maybe = m > _OFFSET * np.abs(k)  # False for NaN
+        maybe = m > OFFSET * np.abs(k)  # False for NaN
         if not maybe.any():
             return False
     q = _reduce(gc, gc, red, block)
-    flag = maybe & ((m if scale is None else np.abs(scale) * m) > _OFFSET * np.sqrt(q / n))
+    flag = maybe & ((m if scale is None else np.abs(scale) * m) > OFFSET * np.sqrt(q / n))
     if not flag.any():
         return False
     acc = centered_product(dyc, wc, red, reduce=lambda t, ax: _reduce(t, None, ax, block))
@@ -584,7 +580,7 @@ def fused_backward(
     (batch and instance norm, no weight, a constant one)
     g - mean(g) = w (dy - mean(dy)), and dy is centred first; otherwise g is
     formed and centred (with a correction pass) and a group whose mean(g)
-    exceeds _OFFSET times its spread is centred again from the exact product
+    exceeds OFFSET times its spread is centred again from the exact product
     (:func:`_refine_offset`, refnorm._twoproduct; one sum of squares, taken
     only where a bound from k does not already rule the offset out). For
     batch and instance norm dweight = sum((dy - mean(dy)) xhat) too, as

@@ -47,7 +47,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._moments import Moments, group_size, mean_square, moments, sum_keep
-from ._twoproduct import centered_product
+from ._twoproduct import OFFSET, centered_product
 
 #: Data whose largest magnitude in a group lies in [2^LO, 2^HI] (or is 0) is evaluated by the
 #: fast path: no square, product or sum there can overflow, and what underflows is below
@@ -265,9 +265,9 @@ def scaled_backward(dy, x, red, w, param_red, *, eps, placement, center, trainin
                     mean_lo=None):
     """(dx, dweight, dbias) evaluated on scaled copies (see the module docstring).
 
-    ``mean_lo``: the low word of a given mean (keepdims, unscaled), or None. With centering, g -
-    mean(g) is formed from the exact product dy' weight' (refnorm._twoproduct), so an offset in
-    dy is not rounded into g.
+    ``mean_lo``: the low word of a given mean (keepdims, unscaled), or None. With centering, a
+    group whose mean(g) exceeds OFFSET times its spread has g - mean(g) formed from the exact
+    product dy' weight' (refnorm._twoproduct), so an offset in dy is not rounded into g.
     """
     with np.errstate(all="ignore"):
         sc = _Scaled(x, red, eps=eps, placement=placement, center=center, mean=mean, rstd=rstd,
@@ -281,12 +281,19 @@ def scaled_backward(dy, x, red, w, param_red, *, eps, placement, center, trainin
         g = d1 if ws is None else d1 * ws
         t2 = _shift(group_amax(g, red))
         out_shift = sc.k - sc.J - (t1 + q + t2)
+        n = sc.n
         if center and training:
-            g = centered_product(d1, ws, red)  # (dy' weight') - mean, from the exact product
+            gm = sum_keep(g, red) / n
+            g -= gm  # g is a fresh array (d1 is not used again without a weight)
+            g -= sum_keep(g, red) / n  # the correction pass, as in _core
+            if ws is not None:
+                # Where dy's offset dwarfs g's spread, from the exact product instead (_twoproduct).
+                flag = np.abs(gm) > OFFSET * np.sqrt(sum_keep(g * g, red) / n)
+                if flag.any():
+                    g = np.where(flag, centered_product(d1, ws, red), g)
         g = np.ldexp(g, t2)
         if not training:
             return np.ldexp(g * sc.R, out_shift), dweight, dbias
-        n = sc.n
         k2 = sum_keep(g * sc.xh2, red) / n
         bracket = sc.R * g - np.ldexp(sc.b2 * k2 * sc.xh2, -sc.jb)
         return np.ldexp(bracket, out_shift), dweight, dbias

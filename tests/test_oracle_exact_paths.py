@@ -210,6 +210,26 @@ def test_dy_offset_is_exact(op, kind, saved):
                                                                    f"{'saved' if saved else 'recomputed'}")
 
 
+@pytest.mark.parametrize("saved", [False, True], ids=["recomputed", "saved"])
+def test_extreme_range_keeps_both_paths_exact(saved):
+    """Data of size 1e200 (squares beyond float64: the power-of-two scaled path, refnorm._scaled)
+    with the same mean/spread ratio 1e10 and dy = 1e190 (1e6 + N(0, 1)) (so that dx is near 1), a
+    nearly constant weight:
+    the scaled path also restores a saved mean's low word and centres g from the exact product
+    (reference: refnorm.exact.normalize_large, exact rational arithmetic; Ba et al. 2016, eq. 4)."""
+    rng = np.random.default_rng(23)
+    n = 2000
+    x = 1e200 * (1.0 + 1e-10 * rng.standard_normal((G, n)))
+    dy = 1e190 * (OFFSET + rng.standard_normal((G, n)))
+    w = 0.3 * (1.0 + 1e-9 * rng.standard_normal(n))
+    ref = exact.normalize_large(x, 1, dy, eps=EPS, weight=w[None, :])
+    assert 0.1 < np.max(np.abs(ref.dx)) < 1e3  # in range: the relative check below means something
+    fw = refnorm.layer_norm_forward(x, n, w, eps=EPS)
+    st = dict(mean=fw.mean, rstd=fw.rstd) if saved else {}
+    bw = refnorm.layer_norm_backward(dy, x, n, w, eps=EPS, **st)
+    assert_close(bw.dx, ref.dx, TARGET, f"exact paths: scaled layer dx {'saved' if saved else 'recomputed'}")
+
+
 # --------------------------------------------------------------------------- semantics of a saved mean
 
 
