@@ -488,8 +488,6 @@ def fused_forward(
         return y, Stats(mean=None, var=var, rstd=rstd)
 
 
-
-
 def _first_along(w: np.ndarray, red: tuple[int, ...]) -> np.ndarray:
     """w's first element along each axis of ``red`` (keepdims there)."""
     return w[tuple(slice(0, 1) if a in red else slice(None) for a in range(w.ndim))]
