@@ -281,12 +281,14 @@ def test_a_saved_mean_is_used_as_given_unless_it_is_the_rounded_mean(op):
 def test_the_backward_depends_on_values_only():
     """Pure function (the project's rule: no hidden state): the backward given the forward's mean, a
     copy of it built from a Python list, or the exact mean rounded by refnorm.exact (equal values,
-    no shared object) returns the same bits; so does a call with no forward run before it."""
+    no shared object) returns the same bits, before the forward on this x has run and after it and
+    a forward on other data."""
     x, dy = _data(0.0)
     xb, dyb = x.reshape(1, G, N), dy.reshape(1, G, N)
     rounded = exact.to_float64(exact.exact_group_stats(xb, (0, 2))[0])
     before = refnorm.batch_norm_backward(dyb, xb, eps=EPS, mean=rounded, rstd=np.full(G, 100.0)).dx
     fw = refnorm.batch_norm_forward(xb, eps=EPS)
+    refnorm.batch_norm_forward(xb + 1.0, eps=EPS)
     np.testing.assert_array_equal(rounded, fw.mean)  # the forward's mean is the exact mean rounded here
     for mean in (fw.mean, np.array(fw.mean.tolist()), rounded):
         np.testing.assert_array_equal(
