@@ -36,6 +36,16 @@ Two ways to evaluate the same formulas:
   axes (batch, group, instance norm) the formulas are rearranged, without
   changing them, to save passes (see the two functions).
 
+Offsets. The mean is the double-float pair m0 + c (refnorm._moments), also
+where a backward is given the forward's own float64 mean back: that mean is
+recognised and its low word restored from x (:func:`fused_backward`). The
+gradient's g - mean(g) is never taken of a g = dy * weight rounded with a
+large offset of dy in it: dy is centred before the product where the weight
+is constant over the group, and g is centred from the exact product
+(:mod:`refnorm._twoproduct`) where its mean exceeds 2^10 times its spread.
+Both keep dx within 1e-12 of exact arithmetic on mean 1e8 / spread 1e-2 data
+(tests/test_oracle_exact_paths.py).
+
 Range. The fused evaluation squares deviations and multiplies gradients by
 them in plain float64; for finite data far from magnitude 1 (1e200, 1e-170)
 that over- or underflows. The groups where it may have (told from the
@@ -61,16 +71,23 @@ import numpy as np
 from . import _scaled
 from ._moments import Moments, group_size, mean_square, moments, sum_keep
 from ._parallel import chunk_bounds, run_chunks
+from ._twoproduct import OFFSET, centered_product
 
 
 @dataclass(frozen=True)
 class Stats:
-    """Keepdims statistics used to normalize: mean (None without centering), var, rstd."""
+    """Keepdims statistics used to normalize: mean (None without centering), var, rstd.
+
+    ``refine`` (saved statistics given to a backward pass): a given mean that is the float64
+    mean of x rounded stands for the double-float mean m0 + c it came from, whose low word the
+    backward recovers from x (see :func:`fused_backward`); running statistics are never refined.
+    """
 
     mean: np.ndarray | None
     var: np.ndarray
     rstd: np.ndarray
     moments: Moments | None = None
+    refine: bool = False
 
 
 def inv_std(var: np.ndarray, eps: float, placement: str) -> np.ndarray:
@@ -145,14 +162,6 @@ def affine(xhat: np.ndarray, w: np.ndarray | None, b: np.ndarray | None) -> np.n
     return y
 
 
-def _centered_mean(a: np.ndarray, red: tuple[int, ...]) -> np.ndarray:
-    """a - mean(a) over ``red`` with one correction pass (the same idea as the moments)."""
-    n = group_size(a.shape, red)
-    d = a - sum_keep(a, red) / n
-    d -= sum_keep(d, red) / n
-    return d
-
-
 def backward(
     dy: np.ndarray,
     xhat: np.ndarray,
@@ -173,7 +182,8 @@ def backward(
     if not training:
         return g * st.rstd, dweight, dbias
     n = group_size(g.shape, red)
-    gc = _centered_mean(g, red) if center else g
+    # g - mean(g) from the exact product dy * w, with a correction pass (refnorm._twoproduct)
+    gc = centered_product(dy, w, red) if center else g
     k = sum_keep(gc * xhat, red) / n
     if placement == "inside":
         beta = st.rstd
@@ -193,7 +203,11 @@ def stats_for_backward(
     placement: str,
     center: bool,
 ) -> Stats:
-    """The batch statistics of x, or the saved ones (keepdims mean/rstd) when given."""
+    """The batch statistics of x, or the saved ones (keepdims mean/rstd) when given.
+
+    A saved mean is marked ``refine``: where it is the float64 mean of x rounded, the backward
+    uses the double-float mean it came from (:func:`fused_backward`).
+    """
     if rstd is None:
         return batch_stats(x, red, eps, placement, center)
     with np.errstate(over="ignore", divide="ignore"):  # an rstd outside the fast window: see _scaled
@@ -201,7 +215,7 @@ def stats_for_backward(
             var = 1.0 / (rstd * rstd) - eps
         else:
             var = (1.0 / rstd - eps) ** 2
-    return Stats(mean=mean, var=var, rstd=rstd)
+    return Stats(mean=mean, var=var, rstd=rstd, refine=mean is not None)
 
 
 # --- fused, chunked evaluation -------------------------------------------------------------
@@ -474,6 +488,68 @@ def fused_forward(
         return y, Stats(mean=None, var=var, rstd=rstd)
 
 
+def _first_along(w: np.ndarray, red: tuple[int, ...]) -> np.ndarray:
+    """w's first element along each axis of ``red`` (keepdims there)."""
+    return w[tuple(slice(0, 1) if a in red else slice(None) for a in range(w.ndim))]
+
+
+def _constant_along(w: np.ndarray | None, red: tuple[int, ...]) -> bool:
+    """Whether the weight is None or takes one value along ``red`` in every group."""
+    if w is None or all(w.shape[a] == 1 for a in red):
+        return True
+    return bool(np.all(w == _first_along(w, red)))
+
+
+def _saved_mean_low(dev: np.ndarray, mean: np.ndarray, red: tuple[int, ...], n: int,
+                    block: int | None) -> tuple[np.ndarray, np.ndarray]:
+    """(c, s): c = sum(x - mean) / n where a given mean is the float64 mean of x rounded, else 0;
+    s = sum(x - mean) where it is not, else 0.
+
+    dev = x - mean is exact where x is within a factor 2 of the mean (Sterbenz's lemma), so
+    mean + c is the double-float mean of x. A mean that c does not move by more than one unit in
+    its last place (|c| <= spacing(mean)) is that mean rounded: the oracle's own forward mean
+    always is, wherever |mean| is large against the spread and the low word matters. Any other
+    mean is used as given (c = 0): a kernel's statistic two units off is not corrected; s is then
+    what sum(xhat) = r s is for it (no longer 0).
+    """
+    s1 = _reduce(dev, None, red, block)
+    c = s1 / n
+    own = np.abs(c) <= np.spacing(np.abs(mean))  # False for NaN or Inf
+    return np.where(own, c, 0.0), np.where(own, 0.0, s1)
+
+
+def _refine_offset(gc: np.ndarray, dyc: np.ndarray, wc: np.ndarray | None, scale: np.ndarray | None,
+                   gmean: np.ndarray, k: np.ndarray | None, red: tuple[int, ...], n: int,
+                   block: int | None) -> bool:
+    """Re-centre, from the exact product, the groups whose g = dy * weight is offset far beyond its spread.
+
+    gc holds s (g - mean(g)) formed from the rounded product (s = ``scale`` or 1), gmean =
+    mean(g), and k = mean((g - mean(g)) xhat) in units of g, or None. A group is re-centred when
+    |mean(g)| > OFFSET rms(g - mean(g)). With the batch statistics mean(xhat^2) = var r^2 <= 1, so
+    |k| <= rms(g - mean(g)) (Cauchy-Schwarz) and a group with |mean(g)| <= OFFSET |k| never is:
+    the sum of squares that measures the spread is only taken where some group is not ruled out
+    so (k None, for given statistics: always). Each group's decision and bits depend on its own
+    data alone. The re-centred groups get s * centered_product(dy, weight) in place; returns
+    whether there were any.
+    """
+    m = np.abs(gmean)
+    if k is None:
+        maybe = True
+    else:
+        maybe = m > OFFSET * np.abs(k)  # False for NaN
+        if not maybe.any():
+            return False
+    q = _reduce(gc, gc, red, block)
+    flag = maybe & ((m if scale is None else np.abs(scale) * m) > OFFSET * np.sqrt(q / n))
+    if not flag.any():
+        return False
+    acc = centered_product(dyc, wc, red, reduce=lambda t, ax: _reduce(t, None, ax, block))
+    if scale is not None:
+        acc *= scale
+    np.copyto(gc, acc, where=np.broadcast_to(flag, gc.shape))
+    return True
+
+
 def fused_backward(
     dy: np.ndarray,
     x: np.ndarray,
@@ -491,8 +567,22 @@ def fused_backward(
 
     st is ``stats`` when given (saved statistics, or :func:`fixed_stats` in
     eval mode), else the batch statistics of x, recomputed per chunk as
-    :func:`batch_stats` does (double-float mean m0 + c). The gradient g is
-    centred in dx's own memory (with the correction pass of _centered_mean).
+    :func:`batch_stats` does (double-float mean m0 + c). A saved mean
+    (``st.refine``) that is the float64 mean of x rounded is replaced by the
+    double-float mean it came from, mean + sum(x - mean)/n (one extra sum;
+    see :func:`_saved_mean_low`), so that passing the forward's own
+    statistics back loses nothing; any other saved mean is used as given.
+
+    The gradient g is centred in dx's own memory without letting an offset
+    in dy be rounded into it: where the weight is constant over each group
+    (batch and instance norm, no weight, a constant one)
+    g - mean(g) = w (dy - mean(dy)), and dy is centred first; otherwise g is
+    formed and centred (with a correction pass) and a group whose mean(g)
+    exceeds OFFSET times its spread is centred again from the exact product
+    (:func:`_refine_offset`, refnorm._twoproduct; one sum of squares, taken
+    only where a bound from k does not already rule the offset out). For
+    batch and instance norm dweight = sum((dy - mean(dy)) xhat) too, as
+    sum(xhat) = 0 over the group.
 
     Where dweight/dbias also reduce over some of the statistics' axes
     (``common``: all of them for batch norm, the spatial ones for group norm),
@@ -525,6 +615,9 @@ def fused_backward(
     red_rest = tuple(a for a in red if a not in common)
     param_rest = tuple(a for a in param_red if a not in common)
     n_common = group_size(shape, common)
+    w_flat = _constant_along(w, red)  # then g - mean(g) = w (dy - mean(dy))
+    w_first = None if w is None else _first_along(w, red)
+    refine = stats is not None and stats.refine and stats.mean is not None and center and training
     # The statistics and sums that tell which groups the fast evaluation may have got wrong by
     # over- or underflow (refnorm._scaled): each chunk writes its part, judged once at the end.
     kshape = tuple(1 if i in red else d for i, d in enumerate(shape))
@@ -533,7 +626,7 @@ def fused_backward(
     rec = {name: np.empty(cshape if name in ("sdy", "dwf") else kshape)
            for name, wanted in (("var", stats is None), ("m0", stats is None and center), ("r", stats is None),
                                 ("sdy", bool(common)), ("dwf", bool(common)), ("k", training),
-                                ("sgn", training and center), ("corr", branch_a)) if wanted}
+                                ("sgn", training and center), ("corr", branch_a), ("lo", refine)) if wanted}
 
     def work(lo: int, hi: int):
         ix = _index(s, lo, hi)
@@ -547,15 +640,36 @@ def fused_backward(
                 rec["m0"][ix] = m0c
         else:
             rc, vc, cc = _take(stats.rstd, s, lo, hi), _take(stats.var, s, lo, hi), None
-            dev = _given_dev(xc, _take(stats.mean, s, lo, hi), buf)
+            mc = _take(stats.mean, s, lo, hi)
+            dev = _given_dev(xc, mc, buf)
+            if refine:
+                cc, s_given = _saved_mean_low(dev, mc, red, n, block)
+                rec["lo"][ix] = cc
 
         xhat = None
         sg = None  # sum(g) over red, when it comes from the shared sum(dy)
+        mdy = None  # mean(dy) over red, where the weight is constant there
+        dy_centred = False  # dx's chunk holds dy - mdy
         if common:
             sdy = _reduce(dyc, None, common, block)
-            dw = _reduce(dyc, dev, common, block, tmp=dxc)  # dx's chunk is free until g is formed
-            if cc is not None:
-                dw -= cc * sdy
+            if center and training and n_common == n:
+                # Batch and instance norm: the group is one channel, so with the batch mean (or the
+                # rounded one it came from) sum(xhat) = 0 there and dweight = sum(dy xhat) =
+                # sum((dy - mean(dy)) xhat): no offset of dy multiplies the rounding of xhat.
+                # sum(xhat) = r s_given for a given mean used as given.
+                mdy = sum_keep(sdy, red_rest) / n if red_rest else sdy / n  # red_rest: axes of length 1
+                np.subtract(dyc, mdy, out=dxc)
+                dy_centred = True
+                sdm = _reduce(dxc, None, common, block)  # sum(dy - mdy) of the stored differences
+                dw = _reduce(dxc, dev, common, block)
+                if cc is not None:
+                    dw -= cc * sdm
+                if refine:
+                    dw += mdy * s_given
+            else:
+                dw = _reduce(dyc, dev, common, block, tmp=dxc)  # dx's chunk is free until g is formed
+                if cc is not None:
+                    dw -= cc * sdy
             dw *= rc
             rec["sdy"][ix], rec["dwf"][ix] = sdy, dw
             if param_rest:
@@ -564,6 +678,8 @@ def fused_backward(
             if center and training:
                 t = sdy if wc is None else sdy * wc
                 sg = sum_keep(t, red_rest) if red_rest else t
+                if w_flat and mdy is None:
+                    mdy = sum_keep(sdy, red_rest) / n
         else:
             if dev is buf:
                 if cc is not None:
@@ -594,10 +710,24 @@ def fused_backward(
             # corr = mean(gr) (its rounding error), gc r = gr - corr, xhat = (dev - c) r:
             #   k  = mean(gc xhat) = (sum(gr dev) - corr sum(dev)) / n     (sum(gc) = 0)
             #   dx = r gc - beta k xhat = gr - beta k r dev - (corr - beta k r c)
-            np.multiply(dyc, rc if wc is None else rc * wc, out=dxc)
-            dxc -= rc * (sg / n)
-            corr = _reduce(dxc, None, red, block) / n
+            # gr = (dy - mean(dy)) r w where the weight is constant over the group: an offset in dy
+            # is removed before the product (exactly, by Sterbenz's lemma), never rounded into it.
+            rw = rc if wc is None else rc * wc
+            if dy_centred:  # batch and instance norm: corr = mean(dy - mdy) r w, from the sum taken above
+                dxc *= rw
+                corr = (sum_keep(sdm, red_rest) if red_rest else sdm) * rw / n
+            else:
+                if w_flat:
+                    np.subtract(dyc, mdy, out=dxc)
+                    dxc *= rw
+                else:
+                    np.multiply(dyc, rw, out=dxc)
+                    dxc -= rc * (sg / n)
+                corr = _reduce(dxc, None, red, block) / n
             k = (_reduce(dxc, dev, red, block) - corr * (cc * n)) / n
+            if not w_flat and _refine_offset(dxc, dyc, wc, rc, sg / n, k, red, n, block):
+                corr = _reduce(dxc, None, red, block) / n
+                k = (_reduce(dxc, dev, red, block) - corr * (cc * n)) / n
             coef = (rc if placement == "inside" else _beta_outside(vc)) * k * rc
             buf *= coef
             dxc -= buf
@@ -606,26 +736,37 @@ def fused_backward(
             return dw, db
         gc = dxc
         if center:
-            # gc = g - mean(g) with one correction pass, as _centered_mean.
-            if wc is None:
-                if sg is None:
-                    sg = _reduce(dyc, None, red, block)
-                np.subtract(dyc, sg / n, out=gc)
+            # gc = g - mean(g) with one correction pass: as w (dy - mean(dy)) where the weight is
+            # constant over the group, else from g, re-centred from the exact product where offset.
+            if w_flat:
+                if mdy is None:
+                    mdy = _reduce(dyc, None, red, block) / n
+                if not dy_centred:
+                    np.subtract(dyc, mdy, out=gc)
+                if wc is None:
+                    gmean = mdy
+                else:
+                    gc *= wc
+                    gmean = mdy * _take(w_first, s, lo, hi)
             else:
                 np.multiply(dyc, wc, out=gc)
                 if sg is None:
                     sg = _reduce(gc, None, red, block)
-                gc -= sg / n
+                gmean = sg / n
+                gc -= gmean
             gc -= _reduce(gc, None, red, block) / n
+            rec["sgn"][ix] = gmean
         elif wc is None:
             gc = dyc  # read only
         else:
             np.multiply(dyc, wc, out=gc)
         beta = rc if placement == "inside" else _beta_outside(vc)
-        if center:
-            rec["sgn"][ix] = sg / n
+        screen = stats is None  # xhat from the batch statistics: mean(xhat^2) <= 1 (see _refine_offset)
         if xhat is not None:
             k = _reduce(gc, xhat, red, block) / n
+            if center and not w_flat and _refine_offset(gc, dyc, wc, None, gmean, k if screen else None,
+                                                        red, n, block):
+                k = _reduce(gc, xhat, red, block) / n
             rec["k"][ix] = k
             xhat *= beta * k  # (beta * k) * xhat
             if gc is dxc:
@@ -636,6 +777,10 @@ def fused_backward(
             return dw, db
         k = _reduce(gc, dev, red, block)
         k *= rc / n
+        if center and not w_flat and _refine_offset(gc, dyc, wc, None, gmean, k if screen else None,
+                                                    red, n, block):
+            k = _reduce(gc, dev, red, block)
+            k *= rc / n
         rec["k"][ix] = k
         # dx = r (gc - beta k (dev - c))
         if dev is buf:
@@ -673,6 +818,7 @@ def fused_backward(
             if need.any():
                 dxs, dweight, dbias = _scaled.scaled_backward(
                     dy, x, red, w, param_red, eps=eps, placement=placement, center=center, training=training,
-                    mean=None if stats is None else stats.mean, rstd=None if stats is None else stats.rstd)
+                    mean=None if stats is None else stats.mean, rstd=None if stats is None else stats.rstd,
+                    mean_lo=rec.get("lo"))
                 np.copyto(dx, dxs, where=np.broadcast_to(need, shape))
     return dx, dweight, dbias

@@ -47,6 +47,7 @@ from __future__ import annotations
 import numpy as np
 
 from ._moments import Moments, group_size, mean_square, moments, sum_keep
+from ._twoproduct import OFFSET, centered_product
 
 #: Data whose largest magnitude in a group lies in [2^LO, 2^HI] (or is 0) is evaluated by the
 #: fast path: no square, product or sum there can overflow, and what underflows is below
@@ -186,7 +187,7 @@ class _Scaled:
     """A group's scaled normalization: x' = x 2^k, xh2 = (x' - mean') R with xhat = xh2 2^-J,
     rstd = R 2^(k-J), and the outside-placement gradient factor ``b2`` (see backward)."""
 
-    def __init__(self, x, red, *, eps, placement, center, mean=None, rstd=None):
+    def __init__(self, x, red, *, eps, placement, center, mean=None, rstd=None, mean_lo=None):
         self.red, self.n, self.center, self.placement = red, group_size(x.shape, red), center, placement
         given = rstd is not None
         amax = group_amax(x, red)
@@ -198,6 +199,8 @@ class _Scaled:
         self.moments = None
         if given:
             cen = xs if mean is None else xs - np.ldexp(mean, k)
+            if mean_lo is not None:  # the low word of a saved mean (see _core._saved_mean_low)
+                cen -= np.ldexp(mean_lo, k)
             frac, e = np.frexp(rstd)
             R, J = frac, k - e.astype(np.int64)
             if placement == "inside":
@@ -258,27 +261,39 @@ def scaled_forward(x, red, w, b, *, eps, placement, center, mean=None, rstd=None
     return y, sc
 
 
-def scaled_backward(dy, x, red, w, param_red, *, eps, placement, center, training, mean=None, rstd=None):
-    """(dx, dweight, dbias) evaluated on scaled copies (see the module docstring)."""
+def scaled_backward(dy, x, red, w, param_red, *, eps, placement, center, training, mean=None, rstd=None,
+                    mean_lo=None):
+    """(dx, dweight, dbias) evaluated on scaled copies (see the module docstring).
+
+    ``mean_lo``: the low word of a given mean (keepdims, unscaled), or None. With centering, a
+    group whose mean(g) exceeds OFFSET times its spread has g - mean(g) formed from the exact
+    product dy' weight' (refnorm._twoproduct), so an offset in dy is not rounded into g.
+    """
     with np.errstate(all="ignore"):
-        sc = _Scaled(x, red, eps=eps, placement=placement, center=center, mean=mean, rstd=rstd)
+        sc = _Scaled(x, red, eps=eps, placement=placement, center=center, mean=mean, rstd=rstd,
+                     mean_lo=mean_lo)
         xhat = sc.xhat()
         dweight = sum_keep(dy * xhat, param_red)
         dbias = sum_keep(dy, param_red)
         t1 = _shift(group_amax(dy, red))
         ws, q = _weight_shift(w)
-        g = np.ldexp(dy, t1)
-        if ws is not None:
-            g *= ws
+        d1 = np.ldexp(dy, t1)
+        g = d1 if ws is None else d1 * ws
         t2 = _shift(group_amax(g, red))
-        g = np.ldexp(g, t2)
         out_shift = sc.k - sc.J - (t1 + q + t2)
+        n = sc.n
+        if center and training:
+            gm = sum_keep(g, red) / n
+            g -= gm  # g is a fresh array (d1 is not used again without a weight)
+            g -= sum_keep(g, red) / n  # the correction pass, as in _core
+            if ws is not None:
+                # Where dy's offset dwarfs g's spread, from the exact product instead (_twoproduct).
+                flag = np.abs(gm) > OFFSET * np.sqrt(sum_keep(g * g, red) / n)
+                if flag.any():
+                    g = np.where(flag, centered_product(d1, ws, red), g)
+        g = np.ldexp(g, t2)
         if not training:
             return np.ldexp(g * sc.R, out_shift), dweight, dbias
-        n = sc.n
-        if center:
-            g -= sum_keep(g, red) / n
-            g -= sum_keep(g, red) / n  # the correction pass of _core._centered_mean
         k2 = sum_keep(g * sc.xh2, red) / n
         bracket = sc.R * g - np.ldexp(sc.b2 * k2 * sc.xh2, -sc.jb)
         return np.ldexp(bracket, out_shift), dweight, dbias

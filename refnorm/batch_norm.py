@@ -163,6 +163,10 @@ def batch_norm_backward(
     Statistics: in training mode from x in float64, unless the saved
     ``mean`` and ``rstd`` (shape (C,)) are given; in eval mode running_mean and
     running_var are required. dy has the shape of x.
+    A saved ``mean`` within one unit in the last place of the mean of x, as the
+    forward's own is, stands for the exact mean (its low word is restored from x:
+    passing the forward's statistics back is as accurate as recomputing them);
+    any other mean, and ``rstd`` always, is used as given (docs/conventions.md).
     """
     xf = as_float64("x", x)
     dyf = as_float64("dy", dy)

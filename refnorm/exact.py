@@ -291,6 +291,11 @@ class ExactNorm:
     dbias: np.ndarray | None = None
 
 
+def _broadcasts_to(shape: tuple[int, ...], target: tuple[int, ...]) -> bool:
+    """Whether an array of ``shape`` (same rank) broadcasts to ``target`` without growing it."""
+    return len(shape) == len(target) and all(a in (1, b) for a, b in zip(shape, target))
+
+
 def _mpf(v: Any) -> mpmath.mpf:
     if isinstance(v, Fraction):
         return mpmath.mpf(v.numerator) / v.denominator
@@ -358,7 +363,7 @@ def normalize(
     w = None if weight is None else _finite64("weight", weight)
     b = None if bias is None else _finite64("bias", bias)
     for name, p in (("weight", w), ("bias", b)):
-        if p is not None and (p.ndim != xf.ndim or np.broadcast_shapes(p.shape, xf.shape) != xf.shape):
+        if p is not None and not _broadcasts_to(p.shape, xf.shape):
             raise RefnormError(f"{name} has shape {p.shape}, expected a shape of rank {xf.ndim} broadcastable to {xf.shape}")
     fixed = fixed_mean is not None or fixed_var is not None
     if fixed and (fixed_var is None or (center and fixed_mean is None)):
@@ -626,10 +631,11 @@ def instance_norm(
 
 @dataclass(frozen=True)
 class LargeNorm:
-    """Results of :func:`normalize_large` (unit weight, no bias), float64.
+    """Results of :func:`normalize_large` (no bias), float64.
 
     mean, var (biased), var_unbiased, rstd : per group (shape of the remaining axes).
-    y : x_hat, shape of x. dx, dweight (= sum dy x_hat), dbias (= sum dy) per group: None unless dy given.
+    y : x_hat * weight (x_hat for no weight), shape of x. dx, dweight (= sum dy x_hat),
+    dbias (= sum dy) per group: None unless dy given.
     """
 
     mean: np.ndarray
@@ -648,21 +654,24 @@ def _ratio_to_float(nums: np.ndarray, den: int, e: int) -> np.ndarray:
     return np.ldexp(q, e)
 
 
-def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: float, center: bool = True) -> LargeNorm:
-    """Exact statistics and near-exact elementwise values for long groups (unit weight, eps inside).
+def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: float, center: bool = True,
+                    weight: Any = None) -> LargeNorm:
+    """Exact statistics and near-exact elementwise values for long groups (eps inside the root).
 
-    Per group, with x_i = X_i 2^e and g_i = dy_i = G_i 2^f (integers X_i, G_i),
+    Per group, with x_i = X_i 2^e and g_i = dy_i w_i = G_i 2^f (integers X_i, G_i: the product of
+    two float64 values is an exact integer times a power of two; w = 1 without a weight),
     S = sum X_i, and everything below exact rationals:
 
         mean = S 2^e / n,  v = (n sum X_i^2 - S^2) 2^(2e) / n^2  (mean square without centering)
         d_i = (n X_i - S) 2^e / n                                  (x_i without centering)
-        y_i = d_i r,  r = (v + eps)^(-1/2)
+        y_i = d_i r w_i,  r = (v + eps)^(-1/2)
         dx_i = r [ (g_i - gbar) - d_i q ],  q = mean(g d) / (v + eps)   (rational)
 
     (the train-mode gradient; Ioffe & Szegedy 2015, §3, rewritten with d_i).
     Evaluation error: d_i is one correctly rounded int/int quotient (relative
     error <= u = 2^-53) times an exact power of two; r is rounded once from 40
-    digits (<= u); y_i = fl(d_i * r) adds one rounding: |y_i - exact| <= 3.01 u |y_i|.
+    digits (<= u); y_i = fl(d_i * r) adds one rounding: |y_i - exact| <= 3.01 u |y_i|
+    (4.01 u with a weight: one more product).
     For dx the bracket is one integer numerator over one integer denominator,
     so no cancellation happens in floating point: one division (u), one
     product with r (u) and r itself (u): |dx_i - exact| <= 3.01 u |dx_i|.
@@ -673,20 +682,28 @@ def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: f
     ----------
     x : array_like of finite floats
     axes : the reduction axes
-    dy : None or array of x's shape (unit weight: g = dy)
+    dy : None or array of x's shape
     eps : float >= 0, added inside the square root
     center : False for RMS norm (mean square, no mean subtraction)
+    weight : None (unit weight: g = dy) or an array of x's rank broadcastable to x (g = dy * weight)
 
     Returns
     -------
     LargeNorm
 
-    Cost: Python-integer arithmetic, about 2 s for 10^6 elements with dy.
+    Cost: Python-integer arithmetic, about 2 s for 10^6 elements with dy (more with a weight).
     """
     xf = _finite64("x", x)
     grp = _grouping(xf.shape, _axes(axes, xf.ndim))
     xr = grp.rows(xf)
     dyr = None if dy is None else grp.rows(_finite64("dy", dy))
+    wr = None
+    if weight is not None:
+        wf = _finite64("weight", weight)
+        if not _broadcasts_to(wf.shape, xf.shape):
+            raise RefnormError(f"weight has shape {wf.shape}, expected a shape of rank {xf.ndim} broadcastable "
+                               f"to {xf.shape}")
+        wr = grp.rows(wf)
     eps_q = Fraction(float(eps))
     G, n = xr.shape
     means, vb, vu, rs = (np.empty(G) for _ in range(4))
@@ -709,24 +726,35 @@ def normalize_large(x: Any, axes: Sequence[int] | int, dy: Any = None, *, eps: f
         # d_i = Dn_i * 2^e / n with Dn_i = n X_i - S (or X_i * n / n without centering)
         Dn = X * n - sx.s1 if center else X * n
         y[j] = _ratio_to_float(Dn, n, sx.e) * r
+        if wr is not None:
+            y[j] = y[j] * wr[j]
         if dyr is None:
             continue
-        sg = _RowSums(dyr[j])
-        Gi, f = sg.ints, sg.e
+        sd = _RowSums(dyr[j])
+        if wr is None:
+            Gi, f, sg1 = sd.ints, sd.e, sd.s1
+        else:
+            wi, we = _scaled_ints(wr[j])
+            Gi, f = sd.ints * wi, sd.e + we  # g_i = dy_i w_i exactly
+            sg1 = sum(Gi.tolist())
         sgx = sum(p * q for p, q in zip(Gi.tolist(), sx.vals))
         # sum g d = sum g x - (sum g)(sum x)/n  (exact), C = that / n
-        gd = _fraction(n * sgx - sg.s1 * sx.s1, e=f + sx.e, den=n) if center else _fraction(sgx, f + sx.e)
+        gd = _fraction(n * sgx - sg1 * sx.s1, e=f + sx.e, den=n) if center else _fraction(sgx, f + sx.e)
         q = (gd / n) / denom_q
         P, Q = q.numerator, q.denominator
-        An = Gi * n - sg.s1 if center else Gi * n          # (g_i - gbar) = An_i 2^f / n
+        An = Gi * n - sg1 if center else Gi * n          # (g_i - gbar) = An_i 2^f / n
         lo = min(f, sx.e)
         A = An * (1 << (f - lo)) if f > lo else An
         B = Dn * (1 << (sx.e - lo)) if sx.e > lo else Dn
         num = A * Q - B * P                                  # bracket = num_i 2^lo / (n Q)
         dx[j] = _ratio_to_float(num, n * Q, lo) * r
-        db[j] = _to_float(sg.sum_fraction())
+        db[j] = _to_float(sd.sum_fraction())
+        if wr is not None:  # dweight needs sum dy d, not sum g d
+            sdx = sum(p * q for p, q in zip(sd.vals, sx.vals))
+            gd = (_fraction(n * sdx - sd.s1 * sx.s1, e=sd.e + sx.e, den=n) if center
+                  else _fraction(sdx, sd.e + sx.e))
         with mpmath.workdps(DPS):
-            dw[j] = float(_mpf(gd) * r_mp)                  # sum dy x_hat = r sum g d
+            dw[j] = float(_mpf(gd) * r_mp)                  # sum dy x_hat = r sum dy d
     return LargeNorm(
         mean=means.reshape(grp.stat_shape), var=vb.reshape(grp.stat_shape),
         var_unbiased=vu.reshape(grp.stat_shape), rstd=rs.reshape(grp.stat_shape), y=grp.unrows(y),

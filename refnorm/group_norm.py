@@ -126,6 +126,10 @@ def group_norm_backward(
         dx = r (g - mean(g)) - r xhat mean((g - mean(g)) xhat)
     dweight_c = sum over samples and spatial axes of dy * xhat, dbias_c = sum of dy; shape (C,).
     Statistics from x in float64 unless the saved ``mean`` and ``rstd`` (N, num_groups) are given.
+    A saved ``mean`` within one unit in the last place of the mean of x, as the
+    forward's own is, stands for the exact mean (its low word is restored from x:
+    passing the forward's statistics back is as accurate as recomputing them);
+    any other mean, and ``rstd`` always, is used as given (docs/conventions.md).
     """
     xf, plan, eps = _setup(x, num_groups, axis, eps, eps_placement)
     dyf = as_float64("dy", dy)

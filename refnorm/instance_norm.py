@@ -118,6 +118,10 @@ def instance_norm_backward(
     Training: the group-norm gradient with one channel per group. Eval with
     running statistics: dx = dy * weight_c * r_c. dweight, dbias of shape (C,).
     Saved ``mean``/``rstd`` have shape (N, C).
+    A saved ``mean`` within one unit in the last place of the mean of x, as the
+    forward's own is, stands for the exact mean (its low word is restored from x:
+    passing the forward's statistics back is as accurate as recomputing them);
+    any other mean, and ``rstd`` always, is used as given (docs/conventions.md).
     """
     xf, plan, eps = _setup(x, None, axis, eps, eps_placement)
     c = plan.c

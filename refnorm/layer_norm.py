@@ -75,6 +75,10 @@ def layer_norm_backward(
         dx = r (g - mean(g)) - r xhat mean((g - mean(g)) xhat)
     dweight = sum over rows of dy * xhat, dbias = sum over rows of dy (weight's shape).
     Statistics from x in float64 unless the saved ``mean`` and ``rstd`` are given.
+    A saved ``mean`` within one unit in the last place of the mean of x, as the
+    forward's own is, stands for the exact mean (its low word is restored from x:
+    passing the forward's statistics back is as accurate as recomputing them);
+    any other mean, and ``rstd`` always, is used as given (docs/conventions.md).
     """
     xf = as_float64("x", x)
     dyf = as_float64("dy", dy)
