@@ -16,11 +16,12 @@ about 0.01 s plus 1.4 us per element, one of the torch CPU batch norm adapter ab
 0.8 us per element, so the fixed part is 7,000 to 100,000 elements' worth; eval-mode cases took
 about half the time of train-mode cases of the same shape. The model ignores the dtype and the
 kernel (a case the kernel's declaration skips costs almost nothing): a shard's cost is an
-estimate, and the assignment depends on the cases alone.
+estimate, and the assignment depends on the cases alone. Where an earlier run of the kernel
+exists, ``durations`` (measured_costs) balances by its measured case times instead.
 
 Assignment (RULE): cases are taken in order of decreasing cost (ties by id). Each case ranks
-the shards by a hash of (shard, case id) (rendezvous hashing, Thaler & Ravishankar 1998) and
-goes to the first shard in its ranking whose load stays within the capacity
+the shards by a hash of (shard, case id) (rendezvous hashing, Thaler & Ravishankar 1998, from
+memory) and goes to the first shard in its ranking whose load stays within the capacity
 
     capacity = max(ceil(total * (1 + SLACK) / N), largest case cost),   SLACK = 1/50
 
@@ -29,14 +30,15 @@ or, when none has room, to the least loaded shard (lowest index on a tie). The r
 - deterministic: integer costs, sha256 hashes and sorted orders; no dict order, hash
   randomization, clock or machine enters it, so every CI job computes the same cut;
 - balanced: no shard exceeds the capacity unless no shard had room, so the largest shard's
-  cost is at most 1.02 times max(mean, largest case) in practice (measured below);
-- stable: a case stays on its preferred shard unless that shard is full, so adding or removing
-  one case moves few others (about 2% of the cases on average, at most about 11%, over the
-  standard tier of each op with 1 and 3 dtypes at N = 2, 3, 4, 8). Longest-processing-time
-  greedy assignment (Graham 1969) balances slightly better (within 1%) but moves 35-55% of
-  the cases when one case is added, since every later case sees other loads; pure rendezvous
-  hashing moves none but lets two long-reduction cases land on one shard (max/mean up to 2.4).
-  The trade-off chosen: balance within 2% of the best possible, stability close to hashing.
+  cost is at most 1.02 times max(mean, largest case) in practice;
+- stable: a case stays on its preferred shard unless that shard is full, so removing (or
+  adding) one case moves few others: 3% of the cases on average, at most 11%, over the
+  standard tier of each op with 1 and 3 dtypes at N = 2, 3, 4, 8 (benchmarks/shard_balance.py).
+  Longest-processing-time greedy assignment (Graham 1969, from memory) balances slightly
+  better (within 1% of the best) but moves 35% of the cases on average and up to 48%, since
+  every later case sees other loads; pure rendezvous hashing moves none but ignores cost
+  (max/mean up to 3.3, two long-reduction cases on one shard). The trade-off chosen: balance
+  within 2% of the best possible, stability close to hashing's.
 """
 
 from __future__ import annotations
