@@ -363,3 +363,11 @@ def test_gate_shards_merged_with_the_profile_equal_the_unsharded_gate(runs, tmp_
     # the waiver that matches nothing is reported by the whole run and by the merge, never by a shard
     assert "matches no case" in whole and "matches no case" not in shard_text
     assert "shard 1/2 of each kernel only" in shard_text and "2 of 2 shard(s)" in merged_text
+
+
+def test_a_shard_compared_with_a_whole_run_says_it_is_a_shard(runs, capsys):
+    r = runs["eps_outside"]
+    rc = main(["diff", str(r["dir"] / "full.json"), str(r["shards"][0])])
+    out = capsys.readouterr().out
+    # the other shards' cases are missing from NEW: worse, as diff's rules say, and the note says why
+    assert rc == 1 and "this run is shard 1/3 only" in out, out

@@ -141,6 +141,11 @@ def baseline_notes(new: Mapping[str, Any], old: Mapping[str, Any]) -> list[str]:
     if s_new != s_old:
         notes.append(f"the baseline ran with seed {s_old}, this run with seed {s_new}: the same case ids hold "
                      "other data, so growth compares different samples")
+    for doc, which in ((old, "the baseline"), (new, "this run")):
+        shard = (doc.get("run") or {}).get("shard")
+        if isinstance(shard, Mapping):
+            notes.append(f"{which} is shard {shard.get('index')}/{shard.get('count')} only: the other shards' cases "
+                         "are not in it (to compare whole runs, put the shards together with refnorm merge first)")
     common = set(baseline_index(new)) & set(baseline_index(old))
     if not common and ks_new.get("op") == ks_old.get("op"):
         notes.append("the baseline has no case id in common with this run")
