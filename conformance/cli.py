@@ -23,7 +23,7 @@ from . import dtypes as _dtypes
 from .cases import TIERS, catalog
 from .destinations import DestinationError, file_target
 from .kernel import OPS, Kernel, KernelError, load_kernel
-from .options import DEFAULTS, number_type, tolerance_type
+from .options import DEFAULTS, number_type, shard_type, tolerance_type
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 
@@ -43,7 +43,8 @@ EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
 #:   exit_code(args, doc, code) -> int after every artefact is written: the exit status (the gate's)
 #: Another command that makes a results document (`refnorm score`) runs the same steps with its own
 #: hooks: prepare_outputs(args, hooks) before, finish(args, doc, hooks) after.
-EXTENSIONS = ("conformance.adapters.cli", "conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli")
+EXTENSIONS = ("conformance.adapters.cli", "conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli",
+              "conformance.run.cli")
 
 
 def _extensions():
@@ -79,6 +80,13 @@ def build_parser() -> argparse.ArgumentParser:
                    f"(default {DEFAULTS['seed']})")
     c.add_argument("--case", action="append", default=[], metavar="ID",
                    help="run only this case id (repeatable; a repeated id runs once)")
+    c.add_argument("--shard", type=shard_type, metavar="K/N",
+                   help="run only shard K of N of the selected cases (1 <= K <= N <= 256; deterministic, balanced "
+                        "by expected cost); put the N results files together with refnorm merge")
+    c.add_argument("--shard-durations", metavar="DOC.json",
+                   help="with --shard: balance the shards by the measured case durations of this earlier results "
+                        "file of the kernel (a baseline, say) instead of the cost model; every shard must be given "
+                        "the same file")
     c.add_argument("--workers", type=number_type("workers"), help=f"worker processes, 1 to 256 "
                    f"(default {DEFAULTS['workers']})")
     c.add_argument("--timeout", type=number_type("timeout"), help="per-case timeout in seconds, > 0 and at most "
@@ -142,13 +150,23 @@ def run_options(args: argparse.Namespace, kernel: Kernel, argv: Sequence[str]):
     # a dtype or case named twice runs once
     return RunOptions(tier=args.tier, dtypes=tuple(dict.fromkeys(args.dtype)) if args.dtype else None,
                       case_ids=tuple(dict.fromkeys(args.case)), seed=args.seed, workers=args.workers,
-                      timeout=args.timeout, overrides=dict(args.tolerance), command="refnorm " + shlex.join(argv))
+                      timeout=args.timeout, overrides=dict(args.tolerance), command="refnorm " + shlex.join(argv),
+                      shard=getattr(args, "shard", None), shard_durations=getattr(args, "_shard_durations", None))
 
 
 def _prepare(args: argparse.Namespace) -> None:
-    """check's own options, before the kernel loads: the --json destination."""
+    """check's own options, before the kernel loads: the --json destination, the --shard-durations file."""
     if args.json is not None:
         args.json = file_target(args.json, "--json")
+    if getattr(args, "shard_durations", None) is not None:
+        from .run.shards import read_durations
+
+        if getattr(args, "shard", None) is None:
+            raise UsageError("--shard-durations balances the shards of --shard K/N: give --shard too")
+        try:
+            args._shard_durations = read_durations(args.shard_durations)
+        except ValueError as e:  # conformance.documents.DocumentError: names the file and the field
+            raise UsageError(f"--shard-durations: {e}") from None
 
 
 def prepare_outputs(args: argparse.Namespace, exts) -> None:
@@ -225,6 +243,8 @@ def finish(args: argparse.Namespace, doc: dict[str, Any], exts) -> int:
     if unwritten:
         return EXIT_USAGE
     code = EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
+    if doc["verdict"] == "no cases run" and (doc.get("run") or {}).get("shard"):
+        code = EXIT_OK  # a shard may hold only skipped cases, or none: the merged run says whether any was checked
     for ext in exts:
         if hasattr(ext, "exit_code"):
             code = ext.exit_code(args, doc, code)

@@ -18,7 +18,7 @@ from typing import Any, Callable
 from .tolerances.bounds import OUTPUTS
 
 __all__ = ["DEFAULTS", "LIMITS", "Limit", "OptionError", "check_number", "parse_number", "number_type",
-           "parse_tolerance", "tolerance_type", "shown", "OUTPUT_NAMES"]
+           "parse_tolerance", "tolerance_type", "parse_shard", "shard_type", "shown", "OUTPUT_NAMES"]
 
 #: Defaults of the run options a profile or the command line may set (tier, seed, workers, timeout).
 DEFAULTS: dict[str, Any] = {"tier": "standard", "seed": 0, "workers": 1, "timeout": 120.0}
@@ -73,6 +73,8 @@ def _num(x: float) -> str:
 #:   growth can exceed 100; a factor above 10^6 accepts any change whatever the floor.
 #: - growth_floor: budgets of passing outputs are at most 1, so a floor of 1 or more would count
 #:   every passing budget as the floor and no growth could ever show.
+#: - shards: one CI job each; GitHub Actions runs at most 256 jobs from one matrix (from memory),
+#:   and the assignment of cases to shards costs cases x shards hashes.
 #: - atol, rtol: far above any meaningful tolerance, low enough that atol + rtol |oracle| stays
 #:   finite in float64 (max about 1.8e308, IEEE 754-2019 binary64) for every |oracle| below 1e200.
 LIMITS: dict[str, Limit] = {
@@ -84,6 +86,8 @@ LIMITS: dict[str, Limit] = {
                     low_open=True),
     "growth_floor": Limit("a fraction of the bound", integer=False, low=0, high=1, high_open=True,
                           why="passing budgets are at most 1"),
+    "shards": Limit("the number of shards", integer=True, low=1, high=256,
+                    why="one CI job each; a matrix of more is a typo"),
     "atol": Limit("an absolute tolerance", integer=False, low=0, high=1e100),
     "rtol": Limit("a relative tolerance", integer=False, low=0, high=1e100),
 }
@@ -169,5 +173,33 @@ def tolerance_type(text: str) -> tuple[str, tuple[float, float]]:
     """argparse ``type=`` of --tolerance."""
     try:
         return parse_tolerance(text)
+    except OptionError as e:
+        raise argparse.ArgumentTypeError(str(e)) from None
+
+
+def parse_shard(text: str) -> tuple[int, int]:
+    """K/N: run the K-th of N shards of the selected cases, 1 <= K <= N, N within LIMITS["shards"]."""
+    k_text, slash, n_text = str(text).partition("/")
+    if not slash:
+        raise OptionError(f"expected K/N (shard K of N, e.g. 2/4), received {shown(text)}")
+    try:
+        n = parse_number("shards", n_text.strip())
+    except OptionError as e:
+        raise OptionError(f"N of {shown(text)}: {e}") from None
+    try:
+        k = int(k_text.strip())
+    except ValueError:  # also an integer beyond Python's 4300-digit limit
+        raise OptionError(f"K of {shown(text)}: expected an integer from 1 to N={n}, received "
+                          f"{shown(k_text)}") from None
+    if not 1 <= k <= n:
+        raise OptionError(f"K of {shown(text)}: expected an integer from 1 to N={n} (shards are counted from 1), "
+                          f"received {shown(k)}")
+    return int(k), int(n)
+
+
+def shard_type(text: str) -> tuple[int, int]:
+    """argparse ``type=`` of --shard."""
+    try:
+        return parse_shard(text)
     except OptionError as e:
         raise argparse.ArgumentTypeError(str(e)) from None

@@ -1,7 +1,7 @@
 """pytest plugin: the case catalog as test items, one per case, so a port's CI runs it as tests.
 
     pytest --refnorm-kernel SPEC [--refnorm-tier T] [--refnorm-dtype D ...] [--refnorm-seed N]
-           [--refnorm-profile PATH] [--refnorm-case ID ...] [--refnorm-timeout S]
+           [--refnorm-profile PATH] [--refnorm-case ID ...] [--refnorm-timeout S] [--refnorm-shard K/N]
            [--refnorm-baseline OLD.json] [--refnorm-growth F] [--refnorm-growth-floor B]
 
 Registered through the ``pytest11`` entry point (and loadable with
@@ -26,7 +26,7 @@ _STATE = pytest.StashKey["_State"]()
 def pytest_addoption(parser: pytest.Parser) -> None:
     # The numbers are checked against the limits that `refnorm check` and the profile use
     # (conformance.options): a bad value is pytest's usage error before collection.
-    from conformance.options import number_type
+    from conformance.options import number_type, shard_type
 
     g = parser.getgroup("refnorm", "conformance of normalization kernels (refnorm)")
     g.addoption("--refnorm-kernel", action="append", default=[], metavar="SPEC",
@@ -41,6 +41,9 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     g.addoption("--refnorm-seed", type=number_type("seed"), metavar="N",
                 help="seed of the case data (default: the profile's, else 0)")
     g.addoption("--refnorm-case", action="append", default=[], metavar="ID", help="only this case id (repeatable)")
+    g.addoption("--refnorm-shard", type=shard_type, metavar="K/N",
+                help="collect only shard K of N of each kernel's cases (1 <= K <= N <= 256; the cut of "
+                     "`refnorm check --shard`): one CI job per shard")
     g.addoption("--refnorm-timeout", type=number_type("timeout"), metavar="S",
                 help="per-case timeout in seconds (default: the profile's, else 120)")
     g.addoption("--refnorm-baseline", metavar="OLD.json",
@@ -71,6 +74,7 @@ class _State:
                                dtypes=dts or None, seed=opt("refnorm_seed"), timeout=opt("refnorm_timeout"),
                                case_ids=opt("refnorm_case"), baseline=opt("refnorm_baseline"),
                                growth=opt("refnorm_growth"), growth_floor=opt("refnorm_growth_floor"))
+        self.shard = opt("refnorm_shard")
         self.today = today_utc()
         self.baselines: dict[int, dict[str, Any]] = {}
         for i, p in enumerate(self.plans):
@@ -120,6 +124,11 @@ class _State:
             tr.write_line("case statuses: " + ", ".join(f"{n} {s}" for s, n in sorted(self.statuses.items())))
         waivers = self.profile.waivers if self.profile else ()
         ws = waiver_summary(waivers, self.uses)
+        if self.shard:  # a waiver stale or unmatched on this shard may be used on another
+            k, n = self.shard
+            tr.write_line(f"shard {k}/{n} of each kernel's cases only: the outcome of the whole catalog is that of "
+                          f"all {n} shards together")
+            ws = {**ws, "stale": [], "unmatched": []}
         for w in ws["expired"]:
             tr.write_line(f"expired waiver #{w['index']} (case {w['case']!r}, expired {w['expires']}) matches "
                           f"{w['cases']} case(s): its items fail; renew or remove it")
@@ -170,6 +179,10 @@ class KernelNode(pytest.Collector):
             cases = plan.cases()
         except PlanError as e:  # an unknown --refnorm-case id: a collection error without a traceback
             raise self.CollectError(f"refnorm: {e}") from None
+        if state.shard is not None:  # the same deterministic cut in every process and on every machine
+            from conformance.run.shards import cut
+
+            cases = list(cut(cases, *state.shard).cases)
         groups: dict[str, list] = {}
         for case in cases:
             groups.setdefault(f"{case.op}.{case.dtype}", []).append(case)

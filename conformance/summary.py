@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from .results import CAUTION, as_float
+from .run.shards import shard_label, shard_lines
 from .text import visible
 
 
@@ -50,13 +51,13 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     """The verdict and its counts; the outputs the declaration leaves unchecked, named on the verdict line
     itself (so that a one-line view keeps them) and then one per line with the reason; the caution."""
     c = doc["counts"]
-    v = doc["verdict"].upper()
+    v = doc["verdict"].upper() + (f" ({shard_label(doc)})" if shard_label(doc) else "")
     first = (f"verdict: {v}  ({c['passed']} passed, {c['failed']} failed, {c['crashed']} crashed, "
              f"{c['timed_out']} timed out, {c['error']} errors, {c['skipped']} skipped)")
     names = unchecked_names(doc)
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
-    lines = [first, *unchecked_lines(doc), *incomplete_lines(doc)]
+    lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
 

@@ -23,7 +23,7 @@ from typing import Any, Mapping
 from ..results import as_float
 from ..tolerances.bound import json_number
 
-__all__ = ["baseline_index", "regress_case", "growth_of", "baseline_notes"]
+__all__ = ["baseline_index", "regress_case", "unregress_case", "regression_line", "growth_of", "baseline_notes"]
 
 
 def baseline_index(old: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
@@ -72,10 +72,8 @@ def regress_case(case: dict[str, Any], old_case: Mapping[str, Any] | None, growt
             "max_abs": as_float(o.get("max_abs")),
             "baseline_max_abs": as_float(prev.get("max_abs")),
         }
-        msgs.append(f"{o['name']}: within its bound, but the budget used grew {g:.3g}x over the baseline "
-                    f"({rec['baseline_budget_used']:.3g} -> {rec['budget_used']:.3g} of the bound; max abs error "
-                    f"{rec['baseline_max_abs']:.3g} -> {rec['max_abs']:.3g}); the gate allows {growth:g}x")
         rec = {k: json_number(v) for k, v in rec.items()}  # a baseline's max_abs may be "nan": the document stays JSON
+        msgs.append(regression_line(o["name"], rec))
         o["passed"] = False
         o["within_bound"] = True
         o["regression"] = rec
@@ -84,6 +82,38 @@ def regress_case(case: dict[str, Any], old_case: Mapping[str, Any] | None, growt
         case["status"] = "failed"
         case["message"] = "\n".join(([case["message"]] if case.get("message") else []) + msgs)
     return found
+
+
+def regression_line(output: str, rec: Mapping[str, Any]) -> str:
+    """The line a regression adds to its case's message (from its ``regression`` record)."""
+    f = {k: as_float(rec.get(k)) for k in ("growth", "limit", "budget_used", "baseline_budget_used", "max_abs",
+                                           "baseline_max_abs")}
+    return (f"{output}: within its bound, but the budget used grew {f['growth']:.3g}x over the baseline "
+            f"({f['baseline_budget_used']:.3g} -> {f['budget_used']:.3g} of the bound; max abs error "
+            f"{f['baseline_max_abs']:.3g} -> {f['max_abs']:.3g}); the gate allows {f['limit']:g}x")
+
+
+def unregress_case(case: dict[str, Any]) -> bool:
+    """Undo regress_case in place: the case's outputs and status as the run gave them, before any baseline
+    (a merge sets the shards' gate decisions aside and judges the whole run once). Returns whether it
+    changed anything."""
+    hit = [o for o in case.get("outputs", []) if "regression" in o]
+    if not hit:
+        return False
+    lines = [regression_line(o["name"], o["regression"]) for o in hit]
+    for o in hit:
+        o.pop("regression")
+        o.pop("within_bound", None)
+        o["passed"] = True
+    if all(o.get("passed") for o in case.get("outputs", [])) and case.get("status") == "failed":
+        case["status"] = "passed"
+    msg = case.get("message") or ""
+    tail = "\n".join(lines)
+    if msg == tail:
+        case["message"] = ""
+    elif msg.endswith("\n" + tail):
+        case["message"] = msg[: -len(tail) - 1]
+    return True
 
 
 def baseline_notes(new: Mapping[str, Any], old: Mapping[str, Any]) -> list[str]:
@@ -111,6 +141,11 @@ def baseline_notes(new: Mapping[str, Any], old: Mapping[str, Any]) -> list[str]:
     if s_new != s_old:
         notes.append(f"the baseline ran with seed {s_old}, this run with seed {s_new}: the same case ids hold "
                      "other data, so growth compares different samples")
+    for doc, which in ((old, "the baseline"), (new, "this run")):
+        shard = (doc.get("run") or {}).get("shard")
+        if isinstance(shard, Mapping):
+            notes.append(f"{which} is shard {shard.get('index')}/{shard.get('count')} only: the other shards' cases "
+                         "are not in it (to compare whole runs, put the shards together with refnorm merge first)")
     common = set(baseline_index(new)) & set(baseline_index(old))
     if not common and ks_new.get("op") == ks_old.get("op"):
         notes.append("the baseline has no case id in common with this run")

@@ -18,10 +18,11 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from ..destinations import DestinationError, file_target, fit_name, folder_target, input_folder
-from ..options import number_type
+from ..options import number_type, shard_type
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, ProfileError, find_profile, load_profile
 
-__all__ = ["add_check_arguments", "add_commands", "prepare", "amend", "emit", "verdict_lines", "exit_code"]
+__all__ = ["add_check_arguments", "add_commands", "prepare", "amend", "emit", "verdict_lines", "exit_code",
+           "DocumentGate"]
 
 #: Options of `refnorm check` whose value a profile may supply when the command line does not
 #: (check leaves them None when they are not given; conformance.options.DEFAULTS applies after).
@@ -157,6 +158,69 @@ def exit_code(args: argparse.Namespace, doc: dict[str, Any], code: int) -> int:
     return cli.EXIT_OK if gate["verdict"] == "pass" else cli.EXIT_FAIL
 
 
+# ---------------------------------------------------------------- a gate on a document made elsewhere
+class DocumentGate:
+    """The gate's hooks for a command that makes its results document without running a kernel here
+    (`refnorm score`, `refnorm merge`): the baseline, a profile's waivers and growth settings, JUnit XML,
+    then the gate's own verdict lines and exit status, as `refnorm check --profile/--baseline` has them.
+
+    ``command`` and ``fixed_at`` say in a note where the bounds came from, since a profile's tolerances
+    cannot change a document's bounds after the fact.
+    """
+
+    def __init__(self, command: str, fixed_at: str) -> None:
+        self.command, self.fixed_at = command, fixed_at
+        self.waivers: tuple = ()
+        self.growth: float | None = None
+        self.floor: float | None = None
+        self.baseline: dict[str, Any] | None = None
+
+    @staticmethod
+    def add_arguments(parser: argparse.ArgumentParser) -> None:
+        """--profile (its waivers and growth settings), --baseline, --growth, --growth-floor, --junit."""
+        parser.add_argument("--profile", metavar="PATH", help="apply a gate profile's waivers and growth settings "
+                            "(its tier, seed, dtypes and tolerances were fixed by the runs)")
+        _gate_arguments(parser)
+
+    def prepare(self, args: argparse.Namespace) -> None:
+        if args.junit is not None:
+            args.junit = file_target(args.junit, "--junit")
+        if args.profile is not None:
+            prof = _load_profile(args.profile)
+            self.waivers, self.growth, self.floor = prof.waivers, prof.growth, prof.growth_floor
+            if prof.tolerances:
+                print(f"refnorm: note: the tolerances of {args.profile} do not apply to {self.command}: the bounds "
+                      f"were fixed {self.fixed_at}", file=sys.stderr)
+        if args.growth is not None:
+            self.growth = args.growth
+        if args.growth_floor is not None:
+            self.floor = args.growth_floor
+        if args.baseline is not None:
+            self.baseline = _load_doc(args.baseline, f"baseline {args.baseline}")
+
+    def amend(self, args: argparse.Namespace, doc: dict[str, Any]) -> dict[str, Any]:
+        if args.profile is None and self.baseline is None:
+            return doc
+        from .decide import apply_gate
+
+        doc, _ = apply_gate(doc, waivers=self.waivers, baseline=self.baseline, baseline_path=args.baseline,
+                            growth=self.growth, growth_floor=self.floor, profile=args.profile)
+        return doc
+
+    def emit(self, args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
+        if not args.junit:
+            return []
+        from .junit import write_junit
+
+        return [f"junit: {write_junit(args.junit, [doc])}"]
+
+    def verdict_lines(self, args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
+        return verdict_lines(args, doc)
+
+    def exit_code(self, args: argparse.Namespace, doc: dict[str, Any], code: int) -> int:
+        return exit_code(args, doc, code)
+
+
 # ---------------------------------------------------------------- refnorm gate
 def add_commands(subparsers) -> None:
     from .. import dtypes as _dtypes
@@ -177,6 +241,13 @@ def add_commands(subparsers) -> None:
                    help="worker processes, 1 to 256 (default: the profile's, else 1)")
     g.add_argument("--timeout", type=number_type("timeout"),
                    help="per-case timeout in seconds, > 0 and at most 86400 (default: the profile's, else 120)")
+    g.add_argument("--shard", type=shard_type, metavar="K/N",
+                   help="run only shard K of N of each kernel's cases (1 <= K <= N <= 256); each kernel's N results "
+                        "files go together with refnorm merge, whose gate is the whole run's")
+    g.add_argument("--shard-durations", metavar="DIR",
+                   help="with --shard: balance each kernel's shards by the measured case durations of DIR/NAME.json "
+                        "(results files named as --json-dir writes them: a baseline folder, say); a kernel without "
+                        "one is cut by the cost model")
     g.add_argument("--json-dir", metavar="DIR", help="write each kernel's results document here as NAME.json")
     g.add_argument("--baseline-dir", metavar="DIR",
                    help="earlier results documents named as --json-dir writes them (NAME.json): the baseline of "
@@ -251,6 +322,23 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     if json_dir is not None:
         for name in names:
             _destination(file_target, json_dir / f"{name}.json", "--json-dir")
+    durations: list = [None] * len(plans)
+    if args.shard_durations is not None:
+        from ..run.shards import read_durations
+
+        if args.shard is None:
+            raise _usage("--shard-durations balances the shards of --shard K/N: give --shard too")
+        folder = _destination(input_folder, args.shard_durations, "--shard-durations")
+        for i, (plan, name) in enumerate(zip(plans, names)):
+            cand = folder / f"{name}.json" if folder is not None else None
+            if cand is None or not cand.is_file():
+                print(f"warning: no {args.shard_durations}/{name}.json for kernel {plan.kernel.name!r}: its shards "
+                      "are cut by the cost model")
+                continue
+            try:
+                durations[i] = read_durations(str(cand))
+            except ValueError as e:
+                raise _usage(f"--shard-durations: {e}") from None
     baselines = []  # read them all before the first run: a bad file must not cost a run
     for plan, name in zip(plans, names):
         bl_path = plan.baseline
@@ -263,13 +351,15 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
     docs, uses, unwritten = [], [], []
     interrupted = False
     with stop.holding():  # a signal stops the gate between kernels; the pool of a running kernel raises it
-        for plan, name, (bl_path, baseline) in zip(plans, names, baselines):
+        for plan, name, (bl_path, baseline), measured in zip(plans, names, baselines, durations):
             if stop.requested():
                 interrupted = True
                 break
             print(f"== {plan.kernel.name} ({plan.spec}): {plan.kernel.op}, {', '.join(plan.dtypes)}, {plan.tier} "
                   f"tier, seed {plan.seed}", flush=True)
-            doc = run_check(plan.kernel, plan.run_options(command), spec=plan.load_spec, quiet=args.quiet)
+            opts = plan.run_options(command)
+            opts.shard, opts.shard_durations = args.shard, measured
+            doc = run_check(plan.kernel, opts, spec=plan.load_spec, quiet=args.quiet)
             doc, u = apply_gate(doc, waivers=plan.waivers, baseline=baseline,
                                 baseline_path=str(bl_path) if bl_path else None, growth=plan.growth,
                                 growth_floor=plan.growth_floor, profile=str(path) if path else None)
@@ -301,6 +391,8 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
                 unwritten.append(f"--junit {junit}: {e.strerror or e}")
         waivers = prof.waivers if prof else ()
         ws = waiver_summary(waivers, uses)
+        if args.shard:  # a waiver stale or unmatched here may be used on another shard: the merge judges that
+            ws = {**ws, "stale": [], "unmatched": []}
         for w in ws["stale"]:
             print(f"warning: stale waiver #{w['index']} (case {w['case']!r}"
                   f"{' output ' + w['output'] if w.get('output') else ''}): matches cases but no failure: remove it")
@@ -318,6 +410,9 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
             stopped = f" (interrupted{f' by {by}' if by else ''}; {len(plans) - len(docs)} kernel(s) not run)"
         print(f"gate: {verdict}: {len(docs) - len(failed)} of {len(plans)} kernel(s) pass"
               + (f"; failing: {', '.join(failed)}" if failed else "") + stopped)
+        if args.shard:
+            print(f"gate: shard {args.shard[0]}/{args.shard[1]} of each kernel only: the gate of the whole run is "
+                  "`refnorm merge` over each kernel's shards (with --profile)")
         print("note: " + GATE_CAUTION)
         for line in unwritten:
             print(f"refnorm: error: could not write {line}", file=sys.stderr)

@@ -22,11 +22,11 @@ from typing import Any, Mapping, Sequence
 
 from ..results import as_float, case_results, counts, summarize, verdict
 from ..text import visible
-from .baseline import baseline_index, baseline_notes, regress_case
+from .baseline import baseline_index, baseline_notes, regress_case, unregress_case
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, Waiver
 from .waivers import OUTCOMES, WaiverUse, gate_outcome, judge_case, today_utc, waiver_summary
 
-__all__ = ["apply_gate", "refresh", "gate_lines", "GATE_CAUTION"]
+__all__ = ["apply_gate", "remove_gate", "refresh", "gate_lines", "GATE_CAUTION"]
 
 GATE_CAUTION = ("A passing gate is evidence on the cases run, under the waivers and baseline stated here, "
                 "not a proof of correctness; sign-off on hardware remains the reviewer's responsibility.")
@@ -84,7 +84,7 @@ def apply_gate(doc: dict[str, Any], *, waivers: Sequence[Waiver] = (), today: da
                        "raised, not waived")
     if ws["expired"]:
         reasons.append(f"{len(ws['expired'])} expired waiver(s) match cases of this run")
-    if not outcomes["passed"]:
+    if not outcomes["passed"] and not (doc.get("run") or {}).get("shard"):  # a shard may hold only skipped cases
         reasons.append("no case passed: nothing was checked")
     doc["gate"] = {
         "verdict": "fail" if reasons else "pass",
@@ -102,6 +102,18 @@ def apply_gate(doc: dict[str, Any], *, waivers: Sequence[Waiver] = (), today: da
     return doc, uses
 
 
+def remove_gate(doc: dict[str, Any]) -> bool:
+    """Set a gate's decision aside (in place): drop ``doc["gate"]`` and the waiver records, undo baseline
+    regressions, recompute counts, summary and verdict. The document is then the run's own results, as
+    before apply_gate. Returns whether there was anything to remove."""
+    found = doc.pop("gate", None) is not None
+    for c in doc["cases"]:
+        found = (c.pop("waiver", None) is not None) | unregress_case(c) | found
+    if found:
+        refresh(doc)
+    return found
+
+
 def gate_lines(doc: Mapping[str, Any], stale: bool = True) -> list[str]:
     """Plain lines for a CI log: the gate's verdict, why, and warnings about waivers and baselines
     (``stale=False`` leaves out the stale waivers, for a caller that sums them over several runs)."""
@@ -112,6 +124,11 @@ def gate_lines(doc: Mapping[str, Any], stale: bool = True) -> list[str]:
     name = doc.get("kernel", {}).get("name", "?")
     lines = [f"gate: {g['verdict'].upper()}  {name}  ({o['passed']} passed, {o['failed']} failed, {o['error']} "
              f"errors, {o['waived']} waived, {o['skipped']} skipped)"]
+    shard = (doc.get("run") or {}).get("shard")
+    if shard:  # waivers that are stale or match nothing here may be used by another shard
+        stale = False
+        lines.append(f"gate: shard {shard['index']}/{shard['count']} only: the gate of the whole run is "
+                     "`refnorm merge` over every shard's results (stale waivers are judged there)")
     lines += [f"gate: fail: {r}" for r in g["reasons"]]
     for w in g["expired_waivers"]:
         lines.append(f"gate: expired waiver #{w['index']} (case {w['case']!r}, expired {w['expires']}: "

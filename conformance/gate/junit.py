@@ -4,7 +4,7 @@ Layout (the common JUnit XML form that CI systems read):
 
     <testsuites name="refnorm" tests= failures= errors= skipped= time=>
       <testsuite name=KERNEL tests= failures= errors= skipped= time= timestamp=>
-        <properties> spec, op, tier, seed, verdict, gate verdict, caution </properties>
+        <properties> spec, op, tier, seed, verdict, gate verdict, shard (K/N), caution </properties>
         <testcase classname="OP.DTYPE" name=CASE_ID time=SECONDS>
           <failure message=FIRST_LINE type=STATUS>full message</failure>   a failed case
           <error message= type=crashed|timed_out|error>...</error>          a crash, timeout or exception
@@ -48,6 +48,12 @@ def _first_line(msg: str, status: str) -> str:
     return first if len(first) <= 500 else first[:497] + "..."
 
 
+def _shard(run: Mapping[str, Any]) -> str | None:
+    """'K/N (verdict of this shard only)' for a shard's document (conformance.run.shards), else None."""
+    s = run.get("shard")
+    return f"{s['index']}/{s['count']} (the verdict is this shard's only)" if isinstance(s, Mapping) else None
+
+
 def _suite(doc: Mapping[str, Any]) -> ET.Element:
     kernel = doc.get("kernel", {})
     run = doc.get("run", {})
@@ -56,7 +62,7 @@ def _suite(doc: Mapping[str, Any]) -> ET.Element:
     gate = doc.get("gate") or {}
     for k, v in (("spec", run.get("spec")), ("op", kernel.get("op")), ("tier", run.get("tier")),
                  ("seed", run.get("seed")), ("verdict", doc.get("verdict")), ("gate", gate.get("verdict")),
-                 ("caution", doc.get("caution"))):
+                 ("shard", _shard(run)), ("caution", doc.get("caution"))):
         if v is not None:
             ET.SubElement(props, "property", name=k, value=_clean(v))
     n = {"tests": 0, "failures": 0, "errors": 0, "skipped": 0}

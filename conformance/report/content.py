@@ -36,6 +36,7 @@ __all__ = [
     "environment_facts",
     "caution_text",
     "counts_line",
+    "scope_line",
     "gate_line",
     "VERDICT_TONE",
 ]
@@ -233,6 +234,22 @@ def gate_line(doc: dict[str, Any]) -> str:
     return text
 
 
+def scope_line(doc: dict[str, Any]) -> str:
+    """For a shard's document, what it covers and that its verdict is not the run's (conformance.run.shards);
+    for a merged one, the shards it was made from; else ''."""
+    from ..run.shards import shard_lines
+
+    lines = shard_lines(doc)
+    if lines:
+        return lines[0]
+    m = (doc.get("run") or {}).get("merged")
+    if m:
+        missing = m.get("missing_shards") or []
+        return (f"Merged from {len(m.get('shards', []))} of {m.get('count')} shards (refnorm merge)"
+                + (f"; missing: {', '.join(f'shard {k}' for k in missing)}" if missing else "") + ".")
+    return ""
+
+
 def counts_line(doc: dict[str, Any]) -> str:
     c = doc.get("counts", {})
     items = [("passed", "passed"), ("failed", "failed"), ("crashed", "crashed"), ("timed_out", "timed out"),
@@ -418,6 +435,14 @@ def environment_facts(doc: dict[str, Any], peers: dict[str, Any] | None = None) 
         facts.append(("spec", str(run["spec"])))
     if run.get("command"):
         facts.append(("command", str(run["command"])))
+    if isinstance(run.get("shard"), dict):
+        sh = run["shard"]
+        facts.append(("shard", f"{sh['index']} of {sh['count']} ({sh.get('rule', '')}) of {sh.get('selected')} selected "
+                               f"cases; selection sha256 {str(sh.get('selection_sha256', ''))[:12]}"))
+    if isinstance(run.get("merged"), dict):
+        m = run["merged"]
+        facts.append(("merged", f"{len(m.get('shards', []))} of {m.get('count')} shards; each shard's timing, command "
+                                "and environment are in results.json, run.merged.shards"))
     if run.get("overrides"):
         facts.append(("tolerance overrides", ", ".join(f"{k}: atol {fmt(a)}, rtol {fmt(r)}"
                                                         for k, (a, r) in run["overrides"].items())))

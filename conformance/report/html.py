@@ -14,6 +14,7 @@ from html import escape
 from typing import Any, Iterable
 
 from ..results import as_float
+from ..run.shards import shard_label
 from ..text import visible
 from . import content as C
 from .peers import compare, headline, own_counts, ratio_text
@@ -296,7 +297,8 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
            + (f' · {_e(C.device_text(doc))}' if C.device_text(doc) else "")
            + f' · tier {_e(run.get("tier", ""))} · seed {_e(run.get("seed", ""))}')
     env = doc.get("environment", {})
-    title = f'refnorm report: {k.get("name", "")} — {doc["verdict"]}'
+    title = f'refnorm report: {k.get("name", "")} — {doc["verdict"]}' + (
+        f' ({shard_label(doc)})' if shard_label(doc) else "")
     parts = [
         "<!DOCTYPE html>",
         '<html lang="en"><head><meta charset="utf-8">',
@@ -304,8 +306,12 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
         f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>",
         f'<header class="banner {tone}" id="verdict"><div class="inner">'
         f'<div class="verdict" data-verdict="{_e(doc["verdict"])}">{_e(doc["verdict"])}</div>'
+        + (f'<div class="who">{_e(shard_label(doc))} only: not the verdict of the whole run</div>'
+           if shard_label(doc) else "") +
         f'<div class="who">{who}</div><div class="counts">{_e(C.counts_line(doc))}</div>'
-        + (f'<div class="counts">{_e(C.gate_line(doc))}</div>' if C.gate_line(doc) else "") + '</div></header>',
+        + (f'<div class="counts">{_e(C.gate_line(doc))}</div>' if C.gate_line(doc) else "")
+        + (f'<div class="counts" id="scope">{_e(C.scope_line(doc))}</div>' if C.scope_line(doc) else "")
+        + '</div></header>',
         "<main>",
         f'<p class="worst {C.worst_tone(doc)}" id="worst">{_worst_html(doc)}</p>',
         _crash_html(doc),

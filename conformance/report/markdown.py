@@ -13,6 +13,7 @@ from __future__ import annotations
 import re
 from typing import Any
 
+from ..run.shards import shard_label
 from ..text import visible
 from . import content as C
 from .peers import compare, headline, own_counts, ratio_text
@@ -162,12 +163,15 @@ def render_markdown(doc: dict[str, Any], peers: dict[str, Any] | None = None, pe
     run = doc.get("run", {})
     dtypes = ", ".join(run.get("dtypes", k.get("dtypes", [])))
     device = C.device_text(doc)
-    lines = [f"## refnorm: **{md(doc['verdict'].upper())}** — {md(k.get('name', ''))}", "",
+    shard = f" ({shard_label(doc)})" if shard_label(doc) else ""
+    lines = [f"## refnorm: **{md(doc['verdict'].upper() + shard)}** — {md(k.get('name', ''))}", "",
              f"{md(k.get('op', ''))} · {md(dtypes)} · " + (f"{md(device)} · " if device else "")
              + f"tier {md(run.get('tier', ''))} · seed {md(run.get('seed', ''))} · {md(C.counts_line(doc))}", "",
              f"**{md(C.worst_line(doc), None)}**", ""]
     if C.gate_line(doc):
         lines[3:3] = ["", md(C.gate_line(doc), None)]
+    if C.scope_line(doc):
+        lines[3:3] = ["", md(C.scope_line(doc), None)]
     lines += _summary(doc)
     lines += _peers(doc, peers, peers_note)
     lines += _failures(doc)

@@ -22,7 +22,8 @@ __all__ = ["RunOptions", "select_cases", "run_check"]
 
 @dataclass
 class RunOptions:
-    """What to run and how. ``overrides`` maps an output name to a fixed (atol, rtol)."""
+    """What to run and how. ``overrides`` maps an output name to a fixed (atol, rtol); ``shard`` is
+    (K, N): run only shard K of N of the selected cases (conformance.run.shards)."""
 
     tier: str = "standard"
     dtypes: tuple[str, ...] | None = None
@@ -32,6 +33,9 @@ class RunOptions:
     timeout: float = 120.0
     overrides: Mapping[str, tuple[float, float]] = field(default_factory=dict)
     command: str = ""
+    shard: tuple[int, int] | None = None
+    #: with ``shard``: measured seconds per case id of an earlier run, and what names it (shards.read_durations)
+    shard_durations: tuple[Mapping[str, float], str] | None = None
 
 
 def select_cases(kernel: Kernel, opts: RunOptions) -> list[Case]:
@@ -46,6 +50,9 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
               stream: TextIO | None = None, quiet: bool = False) -> dict[str, Any]:
     """Run every selected case in worker processes; return the results document.
 
+    With ``opts.shard`` = (K, N) only shard K of the selection runs: the document's coverage and
+    ``run.cases_selected`` count that shard's cases, and ``run.shard`` records the whole selection.
+
     Ctrl-C (and, under the command line's conformance.stop handlers, SIGTERM and SIGHUP)
     stops the run: the document then has complete=False, verdict "incomplete" and the
     signal in run["interrupted"]. Every selected case gets exactly one result: a second
@@ -53,6 +60,13 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
     run was not interrupted is "crashed" too; the document's "coverage" checks it again.
     """
     cases = select_cases(kernel, opts)
+    shard = None
+    if opts.shard is not None:  # the document covers this shard's cases; run.shard names the whole selection
+        from .shards import cut
+
+        durations, source = opts.shard_durations or (None, "")
+        shard = cut(cases, *opts.shard, durations=durations, durations_source=source)
+        cases = list(shard.cases)
     started, t0 = now_iso(), time.monotonic()
     results: dict[str, CaseResult] = {}
     to_run = []
@@ -113,5 +127,7 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
             "spec": spec,
             "pid": os.getpid(),
         }
+        if shard is not None:
+            run["shard"] = shard.record
         return build_document(kernel.declaration(), run, ordered, interrupted is None,
                               selected=[c.id for c in cases])

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import argparse
 import shlex
-import sys
 from dataclasses import fields
 from pathlib import Path
 from typing import Any, Sequence
@@ -198,77 +197,15 @@ def cmd_export(args: argparse.Namespace, argv: Sequence[str]) -> int:
 
 
 # ---------------------------------------------------------------- score
-class _ScoreGate:
-    """The gate's part of a score: the baseline, a profile's waivers and growth settings, JUnit XML,
-    then the gate's own verdict lines and exit status (conformance.gate.cli)."""
-
-    def __init__(self) -> None:
-        self.waivers: tuple = ()
-        self.growth: float | None = None
-        self.floor: float | None = None
-        self.baseline: dict[str, Any] | None = None
-
-    def prepare(self, args: argparse.Namespace) -> None:
-        from ..destinations import file_target
-        from ..gate.profile import ProfileError, load_profile
-        from ..results import load
-
-        if args.junit is not None:
-            args.junit = file_target(args.junit, "--junit")
-        if args.profile is not None:
-            try:
-                prof = load_profile(args.profile)
-            except ProfileError as e:
-                raise _usage(str(e)) from None
-            self.waivers, self.growth, self.floor = prof.waivers, prof.growth, prof.growth_floor
-            if prof.tolerances:
-                print(f"refnorm: note: the tolerances of {args.profile} do not apply to score: the bounds were "
-                      "fixed at export (refnorm export --tolerance)", file=sys.stderr)
-        if args.growth is not None:
-            self.growth = args.growth
-        if args.growth_floor is not None:
-            self.floor = args.growth_floor
-        if args.baseline is not None:
-            try:
-                self.baseline = load(args.baseline)  # conformance.results.load, as the gate reads one
-            except (OSError, ValueError) as e:
-                raise _usage(f"baseline {args.baseline}: {e}") from None
-
-    def amend(self, args: argparse.Namespace, doc: dict[str, Any]) -> dict[str, Any]:
-        if args.profile is None and self.baseline is None:
-            return doc
-        from ..gate.decide import apply_gate
-
-        doc, _ = apply_gate(doc, waivers=self.waivers, baseline=self.baseline, baseline_path=args.baseline,
-                            growth=self.growth, growth_floor=self.floor, profile=args.profile)
-        return doc
-
-    def emit(self, args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
-        if not args.junit:
-            return []
-        from ..gate.junit import write_junit
-
-        return [f"junit: {write_junit(args.junit, [doc])}"]
-
-    def verdict_lines(self, args: argparse.Namespace, doc: dict[str, Any]) -> list[str]:
-        from ..gate import cli as gate_cli
-
-        return gate_cli.verdict_lines(args, doc)
-
-    def exit_code(self, args: argparse.Namespace, doc: dict[str, Any], code: int) -> int:
-        from ..gate import cli as gate_cli
-
-        return gate_cli.exit_code(args, doc, code)
-
-
 def cmd_score(args: argparse.Namespace, argv: Sequence[str]) -> int:
     from .. import cli
     from ..destinations import DestinationError, input_folder
+    from ..gate.cli import DocumentGate
     from ..report import cli as report_cli
     from .manifest import VectorsError, load_manifest, verify_files
     from .score import score_outputs
 
-    hooks = [report_cli, _ScoreGate()]
+    hooks = [report_cli, DocumentGate("score", "at export (refnorm export --tolerance)")]
     cli.prepare_outputs(args, hooks)
     try:
         outputs = input_folder(args.outputs, "OUTPUTS")
