@@ -175,7 +175,7 @@ def test_bounds_exist_for_every_output(name):
         inp = make_inputs(c, prec, 0)
         inp64 = {k: None if v is None else np.asarray(v).astype(np.float64) for k, v in inp.items()}
         fwd = ops.oracle_forward(c, conv, inp64)
-        exp = ops.forward_outputs(c, conv, fwd, ("y",), True)
+        exp = ops.forward_outputs(c, conv, fwd, ("y",) + spec.saved, True)
         bwd = ops.oracle_backward(c, conv, inp64)
         exp.update(dx=bwd.dx, dweight=bwd.dweight, dbias=bwd.dbias)
         assert set(exp) == set(outputs), c.id

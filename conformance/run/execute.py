@@ -117,10 +117,10 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd)
     bwd = "backward" if train else "backward_eval"
     if getattr(kernel, bwd) is not None:
         if train and not saved and conv.saved and getattr(kernel, fwd) is None:
-            # No forward to take them from: give the oracle's, rounded to the params dtype.
+            # No forward to take them from: give the oracle's, rounded to the saved statistics' format.
             from ..dtypes import round_to
 
-            saved = {s: round_to(ops.saved_form(s, oracle_fwd, case), prec.params) for s in conv.saved}
+            saved = {s: round_to(ops.saved_form(s, oracle_fwd, case), output_dtype(s, prec)) for s in conv.saved}
         before = _snapshot(inp)
         res = _call(kernel, bwd, ops.kernel_kwargs(case, bwd, inp, saved=saved))
         out.update(_named(res, kernel.grads, bwd))
