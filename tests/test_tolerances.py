@@ -571,12 +571,21 @@ def test_running_statistics(op, convention, momentum):
 
 @pytest.mark.parametrize("fused", [False, True])
 @pytest.mark.parametrize("op", ["batch_norm", "instance_norm"])
-def test_eval_mode_including_the_fused_scale_shift_form(op, fused):
+def test_eval_mode_centred_and_folded_forms(op, fused):
     # Eval y = x * (w r) + (b - mean w r) is common practice for inference kernels; its rounding
-    # (u |x| w r and u |mean| w r) is part of the bound's u_o (|x| + |mu|) term.
+    # (u |x| w r and u |mean| w r, Higham 2002 §2.1's model applied to each operation) is the
+    # folded form's u_o (|x| + |mu|) term, which a kernel declares with y_form="folded". The
+    # centred form (x - mean) w r + b (the default) rounds only u |x - mean| w r.
     case = Case(op=op, dtype="float32", shape=(4, 3, 6, 6), layout="channels_first", mode="eval", values="cancellation")
-    res, _ = check(case, Precision(), outputs=["y", "dx", "dweight", "dbias"], fused_eval=fused)
+    conv = Conventions(y_form="folded" if fused else "centred")
+    res, bounds = check(case, Precision(), conv, outputs=["y", "dx", "dweight", "dbias"], fused_eval=fused)
     assert all(r.passed for r in res.values()), {k: r.message for k, r in res.items() if not r.passed}
+    # The report's number: how much more the folded form may err on this data (|mean| / spread ~ 1e3).
+    assert bounds["y"].terms["folded_over_centred"] > 100
+    if fused:
+        # The same folded kernel declared centred fails: its cancellation is not a centred kernel's error.
+        res, _ = check(case, Precision(), Conventions(), outputs=["y"], fused_eval=True)
+        assert res["y"].budget_used > 10, res["y"].message
 
 
 def test_sequential_summation_needs_the_worst_case_model_on_long_cancellation_data():
