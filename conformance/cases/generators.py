@@ -133,9 +133,10 @@ def _running(case: Case, x: np.ndarray, rng: np.random.Generator, params: str) -
     near     near the data's own (so eval-mode outputs stay O(1));
     far      the mean 32 spreads away, the variance 10^U(-1, 1) times the data's;
     wide     outside the storage format's range where the params format has it: |mean| in
-             [R/2, R], R = min(4 M_s, M_p / 4), the variance near min((R/4)^2, M_p / 4), so that
-             y = (x - mean) / sqrt(var) stays of order 4 (a kernel that converts them to the
-             storage format overflows);
+             [R/2, R], R = min(4 M_s, M_p / 4, M_a / (16 m)), the variance near min((R/4)^2, M_p / 4),
+             so that y = (x - mean) / sqrt(var) stays of order 4 (a kernel that converts them to the
+             storage format overflows) and the backward's sums of dy (x - mean) over the m terms of a
+             parameter stay inside the default accumulation format (M_a: ranges.py);
     at_mean  the mean +-1.5 2^(p-3) (p: the storage format's significand bits; at most M_s / 8),
              exactly representable, the variance 1: x is drawn by ``_at_mean`` on the grid of that
              mean's spacing, equal to it for about 10% of the elements (y = bias exactly there,
@@ -144,8 +145,9 @@ def _running(case: Case, x: np.ndarray, rng: np.random.Generator, params: str) -
     c = case.channels
     kind = case.running_values
     if kind == "wide":
-        m_s, m_p = (float(dtypes.finfo(f).max) for f in (case.dtype, params))
-        reach = min(4.0 * m_s, 0.25 * m_p)
+        acc = Precision(storage=case.dtype).resolved().accumulate
+        m_s, m_p, m_a = (float(dtypes.finfo(f).max) for f in (case.dtype, params, acc))
+        reach = min(4.0 * m_s, 0.25 * m_p, m_a / (16.0 * case.param_length))
         rm = rng.choice([-1.0, 1.0], size=c) * rng.uniform(0.5, 1.0, size=c) * reach
         rv = min(reach / 4.0, float(np.sqrt(0.25 * m_p))) ** 2 * rng.uniform(0.5, 1.0, size=c)
         return rm, rv
