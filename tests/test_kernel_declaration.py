@@ -265,3 +265,19 @@ def test_outputs_alone_decide_which_statistics_are_checked():
     assert failing == ["rstd"]
     with _bad(r"outputs names \['mean'\], which the declaration does not produce"):
         Kernel(name="x", op="rms_norm", forward=hk.ln_forward, outputs=("y", "mean"))  # RMS norm has no mean
+
+
+def test_the_report_states_the_declaration_fields():
+    """What the bound is derived from is on the report (common practice for a tolerance report: every
+    setting recorded), in words, where it differs from the default."""
+    from conformance.report.content import kernel_facts
+
+    k = replace(LN, dtypes=("float16",), precision=Precision(params="float16", statistics="float16", saved="float32",
+                                                            subnormals="flush", overflow="saturate",
+                                                            output_summation={"dweight": "worst"}))
+    text = dict(kernel_facts({"kernel": k.declaration()}))["precision float16"]
+    for words in ("statistics rounded to float16 before use", "saved statistics in float32",
+                  "subnormals flushed to zero", "out-of-range results saturate", "summation per output: dweight worst"):
+        assert words in text, text
+    plain = dict(kernel_facts({"kernel": LN.declaration()}))["precision float32"]
+    assert "flushed" not in plain and "saturate" not in plain and "rounded to" not in plain
