@@ -396,3 +396,30 @@ def test_saved_statistics_in_a_wider_format():
                     quiet=True)
     msgs = {o["name"]: o["message"] for c in bad["cases"] for o in c["outputs"] if not o["passed"]}
     assert set(msgs) == {"mean", "rstd"} and all("dtype mismatch" in m for m in msgs.values()), msgs
+
+
+FLOAT8 = ("float8_e4m3fn", "float8_e5m2")
+
+
+@pytest.mark.parametrize("storage", FLOAT8)
+@pytest.mark.parametrize("op", ["batch_norm", "group_norm", "instance_norm", "rms_norm"])
+def test_float8_storage_passes_where_its_range_ends(op, storage):
+    """The correct NumPy kernel in float8 storage (float32 parameters and arithmetic) on the cases where the
+    format's range ends: zero-variance groups whose dx = r (g - mean g), r = 1/sqrt(eps), is beyond 448
+    (float8_e4m3fn: NaN, no infinity) or 57344 (float8_e5m2: Inf) (OCP 8-bit FP specification v1.0, from
+    memory), data near the largest value, large data, and eps = 1e-12. (layer norm in float8_e4m3fn runs
+    its whole standard tier in test_correct_kernels_pass.) In-process, for speed."""
+    from conformance.results import build_document
+    from conformance.run.execute import execute_case
+
+    k = correct_kernel(op, storage, "float32")
+    cases = [c for c in catalog([op], [storage], "standard")
+             if c.values in ("constant", "zeros", "near_overflow", "large", "subnormal") and c.strides == "contiguous"
+             and c.weight == "random" and c.mode == "train" and not c.running]
+    assert len(cases) >= 6
+    results = [execute_case(k, c, 0) for c in cases]
+    bad = [f"{r.id}: {r.message[:300]}" for r in results if r.status != "passed"]
+    assert not bad, "\n".join(bad)
+    doc = build_document(k.declaration(), {}, results, True, env={})
+    reasons = {why for c in doc["cases"] for o in c["outputs"] for why in o.get("accepted", {})}
+    assert any(f"outside {storage}'s range" in why for why in reasons), reasons

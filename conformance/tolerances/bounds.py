@@ -25,7 +25,7 @@ and every output gets its final rounding: value (1 + u_f) + u_f |output| + eta_f
 storage format for y and dx, the saved format (Precision.saved) for saved statistics, the params
 format for the others. With Precision.subnormals = "flush", eta_f is f's smallest normal value
 (a result below it may be flushed to zero) and inputs below the smallest normal value are read
-as zero, an input error d = |input| that propagates like any other (stats.py, _Flush).
+as zero, an input error d = |input| that propagates like any other (_Context.flushed, stats.py).
 Statistics rounded before use (Precision.statistics) widen B_mu and dr (stats.StatModel.rounded);
 a per-output summation model (Precision.output_summation) replaces gamma for that output's sums.
 Where a result may lie outside its output format's range, or a NaN mean is a correct kernel's
@@ -107,7 +107,7 @@ class _Context:
         self.w = self._param("weight")
         self.b = self._param("bias")
         self._stats: dict[tuple[float, str], StatModel] = {}
-        self._flushed: dict[str, np.ndarray | float] = {}
+        self._cache: dict[str, np.ndarray | float] = {}  # flushed inputs by name, and the range used
         self.accepts: dict[str, tuple[Accept, ...]] = {}
 
     def floor(self, fmt: str) -> float:
@@ -122,16 +122,16 @@ class _Context:
         are kept (the view's shape for x and dy, the parameters' for weight and bias)."""
         if not self.flush:
             return 0.0
-        if name not in self._flushed:
+        if name not in self._cache:
             fmt = self.p.storage if name in ("x", "dy") else self.p.params
             thr = max(float(dtypes.finfo(fmt).smallest_normal), float(dtypes.finfo(self.p.accumulate).smallest_normal))
             a = {"x": lambda: self.xv, "dy": self.dyv, "weight": lambda: self.w, "bias": lambda: self.b}[name]()
             if a is None:
-                self._flushed[name] = 0.0
+                self._cache[name] = 0.0
             else:
                 aa = np.abs(a)
-                self._flushed[name] = np.where(np.isfinite(aa) & (aa < thr), aa, 0.0)
-        return self._flushed[name]
+                self._cache[name] = np.where(np.isfinite(aa) & (aa < thr), aa, 0.0)
+        return self._cache[name]
 
     def model_for(self, output: str) -> str:
         return self.p.summation_for(output)
@@ -139,10 +139,10 @@ class _Context:
     def range_used(self) -> float:
         """max over statistics of max(sum |x|, sum (x - mu)^2) / the accumulation format's largest value
         (ranges.py): above 1 the data is beyond what a correct kernel of this precision must handle."""
-        if "range" not in self._flushed:
+        if "range" not in self._cache:
             used = ranges.range_used(self.xv, self.grp, self.center, self.p.accumulate)
-            self._flushed["range"] = float(np.nanmax(used)) if np.isfinite(used).any() else 0.0
-        return float(self._flushed["range"])
+            self._cache["range"] = float(np.nanmax(used)) if np.isfinite(used).any() else 0.0
+        return float(self._cache["range"])
 
     # ------------------------------------------------------------- inputs
     def _need(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
