@@ -140,7 +140,11 @@ class _Context:
         """max over statistics of max(sum |x|, sum (x - mu)^2) / the accumulation format's largest value
         (ranges.py): above 1 the data is beyond what a correct kernel of this precision must handle."""
         if "range" not in self._cache:
-            used = ranges.range_used(self.xv, self.grp, self.center, self.p.accumulate)
+            # From the statistics already computed: S_1 = n mean|x|, S_2 = n v (v the mean square for RMS).
+            st = self.stats()
+            with np.errstate(invalid="ignore", over="ignore"):
+                used = np.fmax(st.n * st.A, st.n * st.v) / float(dtypes.finfo(self.p.accumulate).max)
+            used = np.where(np.isfinite(st.v) & np.isfinite(st.A), used, np.nan)
             self._cache["range"] = float(np.nanmax(used)) if np.isfinite(used).any() else 0.0
         return float(self._cache["range"])
 
@@ -510,7 +514,10 @@ def _dx(ctx: _Context, expected: np.ndarray):
             # Second order in the mean's error d: xhat moves by r d and m2 by -r d m1, so xhat m2 moves by
             # r d m2 - r d xhat m1 - r^2 d^2 m1; the last term matters where r B_mu is not small (data of
             # kappa ~ 64 whose saved mean is rounded to bfloat16: r B_mu ~ 0.3).
-            pre = pre + beta_up * r_up * r_up * np.square(st.b_mu) * np.abs(m1)
+            # (r B_mu clamped at 1e100 inside the square: beyond it gamma is GAMMA_CAP-sized, "no bound",
+            # and the first-order terms already carry that; the clamp keeps the square finite.)
+            rb = np.minimum(r_up * st.b_mu, 1e100)
+            pre = pre + beta_up * rb * rb * np.abs(m1)
         pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
                            + 2.0 * dx) + 6.0 * ctx.eta_a
         if ctx.flush:
