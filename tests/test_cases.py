@@ -209,3 +209,11 @@ def test_constant_gradient():
     assert np.all(inp["dy"] == 1) and c.param_length == 1 << 17
     with pytest.raises(ValueError, match="unknown upstream-gradient kind 'twos'"):
         make_inputs(Case("layer_norm", "float16", (4, 4), "trailing", norm_ndim=1, dy="twos"), Precision(), 0)
+
+
+def test_find_case_names_an_unknown_dtype():
+    """A hostile id with a dtype no format has (the catalog reads each format's range): a KeyError naming
+    the formats, as for an unknown op, never another exception type."""
+    for bad in ("layer_norm/float24/x", "layer_norm//"):
+        with pytest.raises(KeyError, match="is not one of float64, float32"):
+            find_case(bad)

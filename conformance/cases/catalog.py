@@ -191,6 +191,8 @@ def find_case(case_id: str, tiers: Iterable[str] = TIERS) -> Case:
     op, dt = parts[0], parts[1]
     if _ops.find(op) is None:
         raise KeyError(f"no case with id {case_id!r}: op {op!r} is not one of {', '.join(_ops.OPS)}")
+    if dt not in _dtypes.FORMATS:
+        raise KeyError(f"no case with id {case_id!r}: dtype {dt!r} is not one of {', '.join(_dtypes.FORMATS)}")
     for t in tiers:
         for c in catalog([op], [dt], t):
             if c.id == case_id:
