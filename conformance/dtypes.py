@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+import functools
+import math
+
 import numpy as np
 
-__all__ = ["FORMATS", "dtype_of", "name_of", "unit_roundoff", "round_to", "ulp_distance", "finfo"]
+__all__ = ["FORMATS", "dtype_of", "name_of", "unit_roundoff", "round_to", "ulp_distance", "finfo", "has_infinity",
+           "overflow_threshold"]
 
 FORMATS = ("float64", "float32", "float16", "bfloat16", "float8_e4m3fn", "float8_e5m2")
 
@@ -51,6 +55,33 @@ def unit_roundoff(name: str) -> float:
     (Micikevicius et al. 2022, "FP8 formats for deep learning").
     """
     return float(finfo(name).eps) / 2.0
+
+
+@functools.lru_cache(maxsize=None)
+def has_infinity(name: str) -> bool:
+    """Whether the format has infinities: the IEEE 754 formats, bfloat16 and float8_e5m2 do;
+    float8_e4m3fn does not (its out-of-range conversions give NaN: OCP 8-bit floating point
+    specification v1.0, 2023, E4M3 encodings; from memory, and ml_dtypes' casts do so)."""
+    with np.errstate(all="ignore"):
+        return bool(np.isinf(np.asarray(np.inf).astype(dtype_of(name))))
+
+
+@functools.lru_cache(maxsize=None)
+def overflow_threshold(name: str) -> tuple[float, bool]:
+    """(t, inclusive): a value of magnitude above t (or equal to t when ``inclusive``) overflows when
+    rounded to nearest into the format.
+
+    t = max + ulp(max)/2, the midpoint between the largest finite value and the next power-of-two
+    step (IEEE 754-2019 §4.3.1 and §7.4: round to nearest overflows at that midpoint). At t itself the
+    tie goes to the even neighbour: beyond max in IEEE formats (max has an odd last significand bit),
+    to max in float8_e4m3fn (448 = 1.110b 2^8 is even). The conversion itself decides ``inclusive``.
+    """
+    fi = finfo(name)
+    big = float(fi.max)
+    t = big + 2.0 ** (math.floor(math.log2(big)) - int(fi.nmant) - 1)
+    with np.errstate(all="ignore"):
+        inclusive = not bool(np.isfinite(np.asarray(t).astype(dtype_of(name))))
+    return t, inclusive
 
 
 def round_to(a: np.ndarray, name: str) -> np.ndarray:

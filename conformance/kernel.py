@@ -24,6 +24,9 @@ __all__ = [
     "OPS",
     "ENTRY_POINTS",
     "SUMMATION_MODELS",
+    "SUBNORMAL_MODES",
+    "OVERFLOW_MODES",
+    "Y_FORMS",
     "SAVED_FORMS",
     "Precision",
     "Conventions",
@@ -39,6 +42,19 @@ ENTRY_POINTS = ("forward", "forward_eval", "backward", "backward_eval")
 SUMMATION_MODELS = ("probabilistic", "pairwise", "worst")
 LAYOUTS = ("channels_first", "channels_last")
 RUNNING_STYLES = ("return", "inplace")
+#: What happens to values in the subnormal range: "keep" (gradual underflow, IEEE 754-2019 §3.3,
+#: §7.5) or "flush" (inputs read as zero and results written as zero: FTZ/DAZ, common practice on
+#: accelerators and with fast-math compiler flags).
+SUBNORMAL_MODES = ("keep", "flush")
+#: What an out-of-range result becomes when rounded to an output's format: "nonsaturating" (+-Inf
+#: in formats with infinities, IEEE 754-2019 §7.4; NaN in float8_e4m3fn, which has none, OCP 8-bit
+#: floating point specification v1.0, 2023, non-saturating conversion: from memory) or "saturate"
+#: (+-the format's largest finite value, the OCP specification's saturating conversion).
+OVERFLOW_MODES = ("nonsaturating", "saturate")
+#: How y is formed from the statistics: "centred" ((x - mean) * (weight * rstd) + bias, or any
+#: order that subtracts the mean from x first) or "folded" (x * scale + shift with scale =
+#: weight * rstd, shift = bias - mean * scale, common practice for inference kernels).
+Y_FORMS = ("centred", "folded")
 
 
 class KernelError(ValueError):
@@ -61,6 +77,17 @@ class Precision:
     output_accumulate : per-output accumulation dtype where a kernel differs, e.g.
         {"dweight": "bfloat16", "dbias": "bfloat16"} for a kernel whose parameter
         gradients are summed in bfloat16.
+    statistics : the format the mean, variance and rstd are rounded to before they are used
+        (y, dx and the saved values are computed from the rounded ones), while the sums stay
+        in ``accumulate``. None: kept in the accumulation format.
+    saved : the format of the saved statistics forward returns (and backward receives).
+        None: the params format.
+    subnormals : "keep" (gradual underflow) or "flush" (subnormal inputs read as zero and
+        subnormal results written as zero: FTZ/DAZ).
+    output_summation : per-output summation model where an output's own sums differ from
+        ``summation``, e.g. {"dweight": "worst", "dbias": "worst"} for sequential atomics.
+    overflow : what an out-of-range result becomes in its output format: "nonsaturating"
+        (+-Inf, or NaN in float8_e4m3fn, which has no infinity) or "saturate" (+-largest finite).
     """
 
     storage: str = "float32"
@@ -69,9 +96,14 @@ class Precision:
     summation: str = "probabilistic"
     lam: float = 8.0
     output_accumulate: Mapping[str, str] = field(default_factory=dict)
+    statistics: str | None = None
+    saved: str | None = None
+    subnormals: str = "keep"
+    output_summation: Mapping[str, str] = field(default_factory=dict)
+    overflow: str = "nonsaturating"
 
     def resolved(self) -> "Precision":
-        """A copy with params and accumulate filled in."""
+        """A copy with params, accumulate, statistics and saved filled in."""
         p = self.params or self.storage
         if self.accumulate:
             a = self.accumulate
@@ -79,15 +111,24 @@ class Precision:
             a = "float32"
         else:
             a = self.storage
-        return replace(self, params=p, accumulate=a, output_accumulate=dict(self.output_accumulate))
+        return replace(self, params=p, accumulate=a, statistics=self.statistics or a, saved=self.saved or p,
+                       output_accumulate=dict(self.output_accumulate),
+                       output_summation=dict(self.output_summation))
 
     def accumulate_for(self, output: str) -> str:
         return self.output_accumulate.get(output, self.accumulate or self.resolved().accumulate)
 
+    def summation_for(self, output: str) -> str:
+        """The summation model of an output's own sums (output_summation, else summation)."""
+        return self.output_summation.get(output, self.summation)
+
     def as_dict(self) -> dict[str, Any]:
         r = self.resolved()
-        return {f.name: (dict(getattr(r, f.name)) if f.name == "output_accumulate" else getattr(r, f.name))
+        return {f.name: (dict(getattr(r, f.name)) if f.name in _MAPPINGS else getattr(r, f.name))
                 for f in fields(r)}
+
+
+_MAPPINGS = ("output_accumulate", "output_summation")
 
 
 @dataclass(frozen=True)
@@ -101,6 +142,9 @@ class Conventions:
         empty when it returns none. RMS norm has no mean.
     running : "return" (forward returns running_mean, running_var) or "inplace"
         (forward updates the running_mean and running_var arrays it is given).
+    y_form : "centred" (y = (x - mean) * scale + bias: the mean is subtracted from x first) or
+        "folded" (y = x * scale + shift, shift = bias - mean * scale: a rounding of |mean| scale
+        that cancels where |mean| is large against the spread; docs/tolerances.md).
     """
 
     momentum_convention: str = "new"
@@ -108,6 +152,7 @@ class Conventions:
     eps_placement: str = "inside"
     saved: tuple[str, ...] = ()
     running: str = "return"
+    y_form: str = "centred"
 
     def as_dict(self) -> dict[str, Any]:
         return {f.name: (list(getattr(self, f.name)) if f.name == "saved" else getattr(self, f.name))
@@ -129,8 +174,9 @@ class Kernel:
     skips cases without weight or bias; ``momentum_none=False`` skips cumulative-average
     cases; ``updates_running=False`` leaves running statistics unchecked.
 
-    ``outputs`` names what forward returns, in order: "y", then any of the saved
-    statistics in ``conventions.saved``, then "running_mean", "running_var" when
+    ``outputs`` names what forward returns, in order, and so what is checked: "y" first,
+    then any statistics of the op (every name in ``conventions.saved``, which backward
+    receives, and others that are only checked), then "running_mean", "running_var" when
     ``conventions.running == "return"``. ``grads`` is a subset of (dx, dweight, dbias).
     ``precision`` maps each supported storage dtype to its Precision (a single
     Precision applies to every dtype in ``dtypes``).
@@ -249,7 +295,7 @@ def _validate(k: Kernel) -> None:
     if not isinstance(c, Conventions):
         bad(f"conventions is {type(c).__name__}, expected a conformance.Conventions")
     for f, choices in (("momentum_convention", ("new", "old")), ("running_var_estimator", ("unbiased", "biased")),
-                       ("eps_placement", ("inside", "outside")), ("running", RUNNING_STYLES)):
+                       ("eps_placement", ("inside", "outside")), ("running", RUNNING_STYLES), ("y_form", Y_FORMS)):
         v = getattr(c, f)
         if not isinstance(v, str) or v not in choices:
             bad(f"conventions.{f} is {v!r}, expected {' or '.join(map(repr, choices))}")
@@ -285,17 +331,19 @@ def _names(obj: Any, field_name: str, value: Any, bad: Callable[[str], None]) ->
 
 
 def _check_outputs(k: Kernel, bad: Callable[[str], None]) -> None:
-    """outputs is exactly what forward returns: y, the saved statistics, the returned running statistics."""
+    """outputs is exactly what forward returns, and decides what is checked: y, statistics of the op
+    (those in conventions.saved are also given to backward), the returned running statistics."""
     c = k.conventions
-    returns_running = bool(_ops.get(k.op).running_outputs) and c.running == "return"
+    spec = _ops.get(k.op)
+    returns_running = bool(spec.running_outputs) and c.running == "return"
     if k.outputs[:1] != ("y",):
         bad(f"outputs is {k.outputs}, expected 'y' first")
-    allowed = {"y", *c.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
+    allowed = {"y", *spec.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
     unknown = [o for o in k.outputs if o not in allowed]
     if unknown:
         bad(f"outputs names {unknown}, which the declaration does not produce "
-            f"(y, conventions.saved={list(c.saved)}, running={c.running!r}"
-            + ("" if bool(_ops.get(k.op).running_outputs) else f"; {k.op} has no running statistics") + ")")
+            f"(y, statistics from {', '.join(spec.saved)}, running={c.running!r}"
+            + ("" if bool(spec.running_outputs) else f"; {k.op} has no running statistics") + ")")
     if k.forward is None:
         if k.outputs != ("y",):
             bad(f"outputs is {k.outputs}, but there is no forward to return them: without a forward, outputs "
@@ -331,23 +379,28 @@ def _check_precision(k: Kernel, bad: Callable[[str], None]) -> None:
     for p in plist:
         if not isinstance(p, Precision):
             bad(f"precision entries must be Precision, received {type(p).__name__}")
-        for f in ("storage", "params", "accumulate"):
+        for f in ("storage", "params", "accumulate", "statistics", "saved"):
             v = getattr(p, f)
             if v is None and f != "storage":
                 continue
             if not isinstance(v, str) or v not in dtypes.FORMATS:
                 bad(f"precision.{f} is {v!r}, expected one of {', '.join(dtypes.FORMATS)}")
-        if not isinstance(p.output_accumulate, Mapping):
-            bad(f"precision.output_accumulate is {type(p.output_accumulate).__name__}, expected a mapping "
-                "output -> dtype")
-        for o, name in p.output_accumulate.items():
-            if o not in known_outputs:
-                bad(f"precision.output_accumulate names output {o!r}, expected names from "
-                    f"{', '.join(sorted(known_outputs))}")
-            if not isinstance(name, str) or name not in dtypes.FORMATS:
-                bad(f"precision names dtype {name!r}, expected one of {', '.join(dtypes.FORMATS)}")
+        for f, choices in (("output_accumulate", dtypes.FORMATS), ("output_summation", SUMMATION_MODELS)):
+            m = getattr(p, f)
+            what = "dtype" if f == "output_accumulate" else "summation model"
+            if not isinstance(m, Mapping):
+                bad(f"precision.{f} is {type(m).__name__}, expected a mapping output -> {what}")
+            for o, name in m.items():
+                if o not in known_outputs:
+                    bad(f"precision.{f} names output {o!r}, expected names from {', '.join(sorted(known_outputs))}")
+                if not isinstance(name, str) or name not in choices:
+                    bad(f"precision.{f}[{o!r}] is {name!r}, expected one of {', '.join(choices)}")
         if not isinstance(p.summation, str) or p.summation not in SUMMATION_MODELS:
             bad(f"precision.summation is {p.summation!r}, expected one of {', '.join(SUMMATION_MODELS)}")
+        for f, choices in (("subnormals", SUBNORMAL_MODES), ("overflow", OVERFLOW_MODES)):
+            v = getattr(p, f)
+            if not isinstance(v, str) or v not in choices:
+                bad(f"precision.{f} is {v!r}, expected one of {', '.join(map(repr, choices))}")
         lam = p.lam
         if isinstance(lam, bool) or not isinstance(lam, (int, float)) or not math.isfinite(lam) or not lam > 0:
             bad(f"precision.lam is {lam!r}, expected a finite positive number")

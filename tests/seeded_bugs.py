@@ -102,10 +102,11 @@ class NumpyNorm:
     """
 
     def __init__(self, op: str, storage: str = "float32", params: str | None = None,
-                 saved: tuple[str, ...] | None = None):
+                 saved: tuple[str, ...] | None = None, saved_format: str | None = None):
         self.op = op
         self.storage = storage
         self.params = params or storage
+        self.saved_format = saved_format or self.params
         if saved is None:
             saved = ("rstd",) if op == "rms_norm" else ("mean", "rstd")
         self.saved = saved
@@ -225,7 +226,9 @@ class NumpyNorm:
         return tuple(1 if i in geo.red else d for i, d in enumerate(view_shape))
 
     def _out(self, a: np.ndarray, kind: str) -> np.ndarray:
-        return np.asarray(a).astype(fmt.dtype_of(self.storage if kind == "storage" else self.params))
+        """An output in its format: kind "storage" (y, dx), "saved" (saved statistics) or "params"."""
+        name = {"storage": self.storage, "saved": self.saved_format}.get(kind, self.params)
+        return np.asarray(a).astype(fmt.dtype_of(name))
 
     # ---- entry points ---------------------------------------------------------------
     def forward(self, x, weight=None, bias=None, *, eps, running_mean=None, running_var=None,
@@ -251,8 +254,8 @@ class NumpyNorm:
             y = y + self._pview(bias, geo)
         outs: dict[str, Any] = {"y": self._out(self._unview(y, geo), "storage")}
         if mean is not None:
-            outs["mean"] = self._out(mean.reshape(geo.stat_shape), "params")
-        outs["rstd"] = self._out(rstd.reshape(geo.stat_shape), "params")
+            outs["mean"] = self._out(mean.reshape(geo.stat_shape), "saved")
+        outs["rstd"] = self._out(rstd.reshape(geo.stat_shape), "saved")
         names = ["y", *self.saved]
         if self.op in ("batch_norm", "instance_norm"):
             rm = rv = None
@@ -275,13 +278,17 @@ class NumpyNorm:
         geo = self._geometry(x, kw)
         xv = self._view(x, geo).astype(F32, copy=False)
         mean, var = self._eval_stats(xv, geo, running_mean, running_var)
-        y = self._center(xv, mean) * self._rstd(var, eps)
         w = self._weight(weight, geo)
+        b = None if bias is None else self._pview(bias, geo)
+        y = self._eval_y(xv, mean, self._rstd(var, eps), w, b)
+        return self._out(self._unview(y, geo), "storage")
+
+    def _eval_y(self, xv, mean, rstd, w, b):
+        """The centred form (x - mean) * rstd * weight + bias."""
+        y = self._center(xv, mean) * rstd
         if w is not None:
             y = y * w
-        if bias is not None:
-            y = y + self._pview(bias, geo)
-        return self._out(self._unview(y, geo), "storage")
+        return y if b is None else y + b
 
     def backward(self, dy, x, weight=None, *, eps, mean=None, rstd=None, **kw):
         x, dy = self._read(x), self._read(dy)
@@ -327,11 +334,16 @@ class NumpyNorm:
                 self._out(db.reshape(ps), "params"))
 
     # ---- declaration ----------------------------------------------------------------
-    def kernel(self, name: str, notes: str = "") -> Kernel:
-        """The kernel's honest declaration of what a correct kernel of this design does."""
+    def kernel(self, name: str, notes: str = "", precision: dict | None = None,
+               conventions: dict | None = None) -> Kernel:
+        """The kernel's declaration of what a correct kernel of this design does; ``precision`` and
+        ``conventions`` add fields to it (the honest declaration of a design that needs them)."""
         running = self.op in ("batch_norm", "instance_norm")
         outputs = ("y", *self.saved) + (("running_mean", "running_var") if running else ())
-        prec = Precision(params=self.params, accumulate="float32")
+        extra = {"params": self.params, "accumulate": "float32", **(precision or {})}
+        if self.saved_format != self.params:
+            extra.setdefault("saved", self.saved_format)
+        prec = Precision(**extra)
         return Kernel(
             name=name, op=self.op,
             forward=self.forward, backward=self.backward,
@@ -339,7 +351,8 @@ class NumpyNorm:
             backward_eval=self.backward_eval if running else None,
             outputs=outputs, dtypes=(self.storage,),
             conventions=Conventions(momentum_convention="new", running_var_estimator="unbiased",
-                                    eps_placement="inside", saved=self.saved, running="return"),
+                                    eps_placement="inside", saved=self.saved, running="return",
+                                    **(conventions or {})),
             precision={self.storage: prec},
             notes=notes or f"NumPy port: {self.storage} storage, {self.params} params, float32 arithmetic",
         )
@@ -515,6 +528,201 @@ class SingleRowHang(NumpyNorm):
             time.sleep(0.05)
 
 
+# ---------------------------------------------------------------- range and declaration bugs
+def _tree_sum(t: np.ndarray, axes: tuple[int, ...], dtype) -> np.ndarray:
+    """A balanced binary tree sum over ``axes`` (keepdims), every partial sum rounded to ``dtype``
+    (Higham 2002, §4.2, pairwise summation)."""
+    t = np.asarray(t)
+    keep = [a for a in range(t.ndim) if a not in axes]
+    moved = np.transpose(t, keep + list(axes))
+    a = moved.reshape(moved.shape[: len(keep)] + (-1,)).astype(dtype)
+    while a.shape[-1] > 1:
+        if a.shape[-1] % 2:
+            a = np.concatenate([a, np.zeros(a.shape[:-1] + (1,), dtype)], axis=-1)
+        a = (a[..., 0::2] + a[..., 1::2]).astype(dtype)
+    kd = tuple(1 if i in axes else d for i, d in enumerate(t.shape))
+    return a[..., 0].reshape(kd).astype(F32)
+
+
+class HalfParamSums(NumpyNorm):
+    """Bug: dweight and dbias are summed in float16 by a balanced tree (every partial sum rounded to
+    binary16), while the declaration says float32 accumulation. On a constant upstream gradient (dy = 1,
+    a sum loss) over 2^17 terms the tree's top partial sums pass 65504, float16's largest value
+    (IEEE 754-2019 binary16), and dbias overflows to +Inf (§7.4) where the answer, 131072, fits the
+    float32 parameters. Corrupts: dbias (Inf on dy=ones), dweight."""
+
+    def _param_sum(self, t, axes, geo, which):
+        return _tree_sum(t, axes, np.float16)
+
+
+class EpsInStorageFormat(NumpyNorm):
+    """Bug: eps is converted to the storage format before it is added (eps = x.dtype.type(eps), a kernel
+    that types its eps argument like its input): 1e-12 is 0 in float16, whose smallest subnormal is
+    2^-24 ~ 6e-8 (IEEE 754-2019 binary16), so a zero-variance group gets rstd = 1/sqrt(0) = Inf and
+    y = 0 * Inf = NaN where the answer is the bias. Corrupts: rstd, y, dx, dweight on zero-variance
+    groups (and, by eps's own rounding, wherever eps is not negligible next to the variance)."""
+
+    def _rstd(self, var, eps):
+        return F32(1) / np.sqrt(var + F32(fmt.dtype_of(self.storage).type(eps)))
+
+
+class FoldedEval(NumpyNorm):
+    """Eval mode folds the normalization into y = x * scale + shift, scale = weight * rstd, shift =
+    bias - running_mean * scale, in float32: shift's rounding, u |running_mean scale| (Higham 2002,
+    §2.1), cancels against x * scale where |running_mean| is large against the spread. Declared centred
+    (the default) it is a bug: on x equal to the running mean (1.5 2^21 in float32) y errs by about
+    0.2 where the answer is the bias. Declared Conventions(y_form="folded") it is a correct kernel of
+    that form. Corrupts (declared centred): y in eval mode."""
+
+    def _eval_y(self, xv, mean, rstd, w, b):
+        scale = rstd if w is None else rstd * w
+        shift = -(mean * scale) if b is None else b - mean * scale
+        return xv * scale + shift
+
+
+class RunningStatsInStorage(NumpyNorm):
+    """Bug: eval mode converts running_mean and running_var to the storage format (float16) before use,
+    though they arrive in the float32 parameter format: values beyond 65504 (float16's largest, IEEE
+    754-2019 binary16) become Inf and y becomes NaN or Inf (running statistics outside the storage
+    range, running=wide). Corrupts: y in eval mode."""
+
+    def _eval_stats(self, xv, geo, running_mean, running_var):
+        st = fmt.dtype_of(self.storage)
+        with np.errstate(over="ignore"):
+            return (self._pview(np.asarray(running_mean).astype(st), geo),
+                    self._pview(np.asarray(running_var).astype(st), geo))
+
+
+class SaturatingCast(NumpyNorm):
+    """Outputs are converted with saturation: values beyond the format's largest finite value become
+    +-that value (448 in float8_e4m3fn; the OCP 8-bit floating point specification v1.0's saturating
+    conversion, from memory). Declared with the default overflow="nonsaturating" (out of range is NaN in
+    float8_e4m3fn, ml_dtypes' cast) it is a bug; declared Precision(overflow="saturate") it is correct.
+    Corrupts (declared nonsaturating): dx where the oracle's value is beyond 448 (constant and
+    all-zero groups, whose dx is r (g - mean(g)) with r = 1/sqrt(eps))."""
+
+    def _out(self, a, kind):
+        name = {"storage": self.storage, "saved": self.saved_format}.get(kind, self.params)
+        big = float(fmt.finfo(name).max)
+        a = np.asarray(a, dtype=np.float64)
+        return np.where(np.isnan(a), a, np.clip(a, -big, big)).astype(fmt.dtype_of(name))
+
+
+class StatsRoundedToStorage(NumpyNorm):
+    """The mean and rstd are rounded to the storage format (bfloat16) before y is computed and before
+    they are saved, with the sums in float32: what ATen's bfloat16 batch-norm statistics pass does
+    (docs/library-precision.md). Declared with the statistics in float32 (the default) it is a bug: the
+    mean's rounding, u_bf16 |mean| = 2^-9 |mean|, moves y by |mean| r 2^-9. Declared
+    Precision(statistics="bfloat16") it is correct. Corrupts (undeclared): y, mean, rstd, dx."""
+
+    def _moments(self, xv, axes, n):
+        mean, var = super()._moments(xv, axes, n)
+        return mean.astype(fmt.dtype_of(self.storage)).astype(F32), var
+
+    def _rstd(self, var, eps):
+        return super()._rstd(var, eps).astype(fmt.dtype_of(self.storage)).astype(F32)
+
+
+LANES = 256
+
+
+class WelfordNorm(NumpyNorm):
+    """A correct kernel of another design: Welford's update per lane (element i of a group in lane
+    i % 256, as a GPU block strides), m_k = m + (x - m)/k, M2_k = M2 + (x - m)(x - m_k) (Welford 1962),
+    then a pairwise merge of the lanes with Chan, Golub & LeVeque's update for two parts: delta =
+    mean_b - mean_a, mean = mean_a + delta n_b/n, M2 = M2_a + M2_b + delta (delta n_a n_b/n) (their
+    eq. 1.5b, from memory). A lane left empty (groups of fewer than 256 elements) has n = 0 and is
+    skipped by the merge. On a group holding +-Inf the updates form Inf - Inf, so its mean is NaN where
+    two passes give +-Inf: the harness accepts that difference, the group's y being NaN either way."""
+
+    def _merge(self, na, ma, qa, nb, mb, qb):
+        n = na + nb
+        safe = np.where(n > 0, n, F32(1))
+        delta = mb - ma
+        mean = np.where(nb == 0, ma, np.where(na == 0, mb, ma + delta * (nb / safe)))
+        m2 = np.where(nb == 0, qa, np.where(na == 0, qb, qa + qb + delta * (delta * (na * nb / safe))))
+        return n, mean, m2
+
+    def _moments(self, xv, axes, n):
+        keep = [a for a in range(xv.ndim) if a not in axes]
+        moved = np.transpose(xv, keep + list(axes))
+        X = moved.reshape(-1, n).astype(F32)
+        steps = -(-n // LANES)
+        pad = steps * LANES - n
+        Xp = np.concatenate([X, np.zeros((X.shape[0], pad), F32)], axis=1).reshape(X.shape[0], steps, LANES)
+        valid = (np.arange(steps * LANES) < n).reshape(steps, LANES)
+        mean = np.zeros((X.shape[0], LANES), F32)
+        m2 = np.zeros((X.shape[0], LANES), F32)
+        cnt = np.zeros(LANES, F32)
+        with np.errstate(invalid="ignore", over="ignore"):
+            for k in range(steps):
+                v = valid[k]
+                cnt = cnt + v
+                xk = Xp[:, k, :]
+                d = xk - mean
+                new = np.where(v, mean + d / np.where(cnt > 0, cnt, F32(1)), mean)
+                m2 = np.where(v, m2 + d * (xk - new), m2)
+                mean = new
+            cnt = np.broadcast_to(cnt, mean.shape).astype(F32)
+            while mean.shape[1] > 1:
+                cnt, mean, m2 = self._merge(cnt[:, 0::2], mean[:, 0::2], m2[:, 0::2],
+                                            cnt[:, 1::2], mean[:, 1::2], m2[:, 1::2])
+        kd = tuple(1 if i in axes else d for i, d in enumerate(xv.shape))
+        out_shape = tuple(xv.shape[a] for a in keep)
+        # keepdims arrays in xv's axis order (the moved order keeps the other axes in order)
+        return (np.reshape(mean[:, 0], out_shape).reshape(kd), np.reshape(m2[:, 0] / F32(n), out_shape).reshape(kd))
+
+
+class MergeSquaresOverflow(WelfordNorm):
+    """Bug: the merge forms delta^2 before scaling it, M2 = M2_a + M2_b + delta^2 (n_a n_b/n), and merges
+    empty lanes like full ones (their mean is 0): delta is then a whole mean, and delta^2 overflows
+    float32 once |mean| passes sqrt(3.4e38) ~ 1.8e19 (IEEE 754-2019 binary32), giving Inf * 0 = NaN,
+    though every sum of the two-pass algorithm stays far inside float32's range there. Corrupts:
+    rstd, y, dx, dweight on large data (|x| ~ 3e19) only."""
+
+    def _merge(self, na, ma, qa, nb, mb, qb):
+        n = na + nb
+        safe = np.where(n > 0, n, F32(1))
+        delta = mb - ma
+        return n, ma + delta * (nb / safe), qa + qb + (delta * delta) * (na * nb / safe)
+
+
+class EmptyMergeNaN(WelfordNorm):
+    """Bug: the merge divides by the merged count without a guard, so two empty lanes (n_a = n_b = 0,
+    every group of fewer than 255 elements has them) give n_b/n = 0/0 = NaN (IEEE 754-2019 §7.2), and
+    the NaN spreads up the merge tree: the mean is NaN where the answer is finite. (Unlike the NaN mean
+    of a group holding +-Inf, this is a wrong answer.) Corrupts: mean and everything computed from it."""
+
+    def _merge(self, na, ma, qa, nb, mb, qb):
+        n = na + nb
+        delta = mb - ma
+        return n, ma + delta * (nb / n), qa + qb + delta * (delta * (na * nb / n))
+
+
+class FlushSubnormals(NumpyNorm):
+    """Subnormals are flushed to zero: inputs below float32's smallest normal value 2^-126 are read as
+    0 and outputs below their format's smallest normal value are written as 0 (FTZ/DAZ; IEEE 754-2019
+    §3.3 defines the subnormals it drops; common practice on accelerators and with fast-math flags).
+    Declared Precision(subnormals="flush") it is a correct kernel of that arithmetic; declared with the
+    default "keep" it fails the subnormal cases. Corrupts (undeclared): mean, dweight, y, dx on
+    subnormal data."""
+
+    def _read(self, a):
+        a = np.asarray(a)
+        with np.errstate(invalid="ignore"):
+            tiny = np.finfo(F32).tiny
+            return np.where(np.abs(a.astype(F32)) < tiny, np.zeros((), a.dtype), a)
+
+    def _weight(self, w, geo):
+        return None if w is None else self._pview(self._read(w), geo)
+
+    def _out(self, a, kind):
+        out = super()._out(a, kind)
+        tiny = float(fmt.finfo(fmt.name_of(out.dtype)).smallest_normal)
+        with np.errstate(invalid="ignore"):
+            return np.where(np.abs(out.astype(np.float64)) < tiny, np.zeros((), out.dtype), out)
+
+
 # ---------------------------------------------------------------- registry
 @dataclass(frozen=True)
 class SeededBug:
@@ -525,6 +733,7 @@ class SeededBug:
     op: str
     storage: str = "float32"
     params: str | None = None
+    base: type = NumpyNorm      # the same design without the bug (another correct design for some bugs)
 
     @property
     def doc(self) -> str:
@@ -539,8 +748,8 @@ class SeededBug:
     @property
     def correct(self) -> Kernel:
         """The same code without the bug (the base class), with the same declaration."""
-        impl = NumpyNorm(self.op, self.storage, self.params)
-        return impl.kernel(f"correct {self.op} ({self.storage})")
+        impl = self.base(self.op, self.storage, self.params)
+        return impl.kernel(f"correct {self.op} ({self.storage}, {self.base.__name__})")
 
 
 BUGS: dict[str, SeededBug] = {b.key: b for b in (
@@ -558,6 +767,16 @@ BUGS: dict[str, SeededBug] = {b.key: b for b in (
     SeededBug("inplace_input", InPlaceCentering, "layer_norm"),
     SeededBug("null_weight_crash", NullWeightCrash, "group_norm"),
     SeededBug("single_row_hang", SingleRowHang, "rms_norm"),
+    # The range and declaration bugs (issue: value ranges and inputs real bugs live in).
+    SeededBug("half_param_sums", HalfParamSums, "layer_norm", "float16", "float32"),
+    SeededBug("eps_in_storage_format", EpsInStorageFormat, "layer_norm", "float16", "float32"),
+    SeededBug("folded_eval", FoldedEval, "batch_norm"),
+    SeededBug("running_stats_in_storage", RunningStatsInStorage, "batch_norm", "float16", "float32"),
+    SeededBug("saturating_cast", SaturatingCast, "layer_norm", "float8_e4m3fn", "float32"),
+    SeededBug("stats_rounded_to_storage", StatsRoundedToStorage, "layer_norm", "bfloat16", "float32"),
+    SeededBug("merge_squares_overflow", MergeSquaresOverflow, "layer_norm", base=WelfordNorm),
+    SeededBug("empty_merge_nan", EmptyMergeNaN, "layer_norm", base=WelfordNorm),
+    SeededBug("flush_undeclared", FlushSubnormals, "layer_norm"),
 )}
 
 

@@ -19,7 +19,8 @@ componentwise, under the bound the kernel's declared Precision implies:
   for dx r (|g| + mean|g| + (|xhat| + r mean|x|) mean|g xhat|), for dweight
   sum |dy| (|xhat| + r mean|x|), for dbias sum |dy|.
 - 4 u_o S_i: the few elementwise operations after the sums (Higham 2002 §3.1, gamma_k for k ops).
-- u_stat S_i: statistics kept in a coarser parameter format than u_o (declared params).
+- u_stat S_i: statistics kept in a coarser parameter format than u_o (declared params), or rounded
+  to a coarser format before use (declared statistics: the variance twice and rstd once, 3 u_st).
 
 A negative control shows that the bound is not vacuous: torch's bfloat16 layer-norm dbias
 breaks it when the declaration claims float32 accumulation.
@@ -257,6 +258,9 @@ def run_and_check(kernel: Kernel, case: Case, *, strides: str = "contiguous", we
                       estimator=conv.running_var_estimator, batches_seen=case.batches_seen)
     u_p, u_a = unit_roundoff(prec.params), unit_roundoff(prec.accumulate)
     u_stat = u_p if u_p > u_a else 0.0
+    # Statistics rounded before use (Precision.statistics): the variance twice, then rstd, each u_st.
+    u_st = unit_roundoff(prec.statistics)
+    u_st = 3.0 * u_st if u_st > u_a else 0.0
     n_stat = case.group_length
     budgets: dict[str, float] = {}
 
@@ -264,7 +268,7 @@ def run_and_check(kernel: Kernel, case: Case, *, strides: str = "contiguous", we
         fmt = prec.storage if name in ("y", "dx") else prec.params
         budgets[name] = check(name, got, exact, mags[name], out_fmt=fmt,
                               u_o=unit_roundoff(prec.accumulate_for(name)), n=n, model=prec.summation,
-                              u_stat=u_stat if stat_dependent else 0.0)
+                              u_stat=(u_stat if stat_dependent else 0.0) + (0.0 if name == "dbias" else u_st))
 
     saved = {}
     if getattr(kernel, fwd_e) is not None:
@@ -635,3 +639,25 @@ def test_torch_round_trip_shares_memory(torch):
     dst = np.zeros(5)
     write_back(dst, rt * 2)
     assert np.array_equal(dst, 2 * r)
+
+
+def test_keras_flushes_subnormals_and_declares_it(keras_kernels, tfk):
+    """TensorFlow flushes float32 subnormals to zero on the CPU (1e-39 is a binary32 subnormal, below 2^-126:
+    IEEE 754-2019 §3.3; gradual underflow would give 1e-36), so every Keras kernel declares
+    Precision(subnormals="flush"), and the harness's subnormal case passes under it. The same kernel declared
+    as keeping subnormals fails that case: the declaration is needed, not decorative."""
+    from dataclasses import replace
+
+    from conformance.cases import find_case
+    from conformance.run.execute import execute_case
+
+    tf = tfk.tf
+    assert float((tf.constant(1e-39, tf.float32) * tf.constant(1000.0, tf.float32)).numpy()) == 0.0
+    k = keras_kernels["layer_norm"]
+    assert all(k.precision_for(dt).subnormals == "flush" for dt in k.dtypes)
+    case = find_case("layer_norm/float32/trailing/12x96/norm_ndim=1/subnormal/w=random/b=random/eps=1e-05/train/"
+                     "contiguous")
+    assert execute_case(k, case, 0).status == "passed"
+    keep = replace(k, precision={dt: replace(k.precision_for(dt), subnormals="keep") for dt in k.dtypes})
+    r = execute_case(keep, case, 0)
+    assert r.status == "failed" and "dweight" in {o["name"] for o in r.outputs if not o["passed"]}, r.message

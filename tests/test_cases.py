@@ -124,3 +124,96 @@ def test_case_lengths():
     g = Case("group_norm", "float32", (2, 6, 5, 5), "channels_last".replace("last", "first"), groups=3)
     assert g.group_length == 2 * 25 and g.param_length == 2 * 25
     assert math.prod(Case("layer_norm", "float32", (3, 4, 5), "trailing", norm_ndim=2).normalized_shape) == 20
+
+
+# ------------------------------------------------------------------ the range cases
+def test_new_case_fields_keep_old_ids_and_name_themselves():
+    """dy and running_values are part of an id only when they are not the default, so every id that existed
+    before them means what it meant (common practice: ids are the interface of --case, waivers, baselines)."""
+    base = Case("batch_norm", "float32", (4, 8, 6, 5), "channels_first")
+    assert base.id == "batch_norm/float32/channels_first/4x8x6x5/normal/w=random/b=random/eps=1e-05/train/contiguous"
+    from dataclasses import replace
+
+    assert "/normal/dy=ones/w=random/" in replace(base, dy="ones").id
+    assert "/eval/running=at_mean/contiguous" in replace(base, mode="eval", running_values="at_mean").id
+    for c in (replace(base, dy="ones"), replace(base, mode="eval", running_values="wide")):
+        assert Case.from_dict(c.as_dict()) == c
+    c = next(c for c in catalog(["batch_norm"], ["float32"], "standard") if c.dy == "ones")
+    assert find_case(c.id) == c
+    old = {k: v for k, v in base.as_dict().items() if k not in ("dy", "running_values")}
+    assert Case.from_dict(old) == base  # a results document written before the fields were added
+
+
+@pytest.mark.parametrize("dt", dtypes.FORMATS)
+def test_every_format_has_the_range_cases(dt):
+    for op in OPS:
+        cases = catalog([op], [dt], "standard")
+        assert any(c.values == "large" for c in cases)
+        assert {c.values for c in cases if c.eps == 1e-12} == {"constant", "zeros"}
+        ones = [c for c in cases if c.dy == "ones"]
+        # More dy = 1 terms per parameter sum than float16's largest value, 65504 (IEEE 754-2019 binary16).
+        assert len(ones) == 1 and ones[0].param_length > 65504
+        if op in ("batch_norm", "instance_norm"):
+            assert {c.running_values for c in cases if c.mode == "eval"} == {"near", "far", "wide", "at_mean"}
+
+
+@pytest.mark.parametrize("dt", dtypes.FORMATS)
+@pytest.mark.parametrize("op", ["layer_norm", "rms_norm"])
+def test_large_values_reach_the_end_of_what_a_correct_kernel_must_handle(op, dt):
+    """The large data's two-pass sums stay inside the default accumulation format (float32 for narrower
+    formats) with at most 1/4 of its range used (conformance/tolerances/ranges.py), yet the one-pass sum of
+    x^2 of the centred ops overflows it (IEEE 754-2019 §7.4), and for float32 single squares do too
+    (|x| above sqrt(3.4e38) ~ 1.8e19): the data separates the two algorithms."""
+    from conformance.tolerances.grouping import grouping
+    from conformance.tolerances.ranges import range_used
+
+    c = Case(op, dt, (12, 96), "trailing", values="large", norm_ndim=1)
+    x = make_inputs(c, Precision(), 0)["x"].astype(np.float64)
+    acc = Precision(storage=dt).resolved().accumulate
+    grp = grouping(c)
+    used = range_used(grp.view(x), grp, op == "layer_norm", acc)
+    assert np.all(used <= 0.25) and np.all(np.isfinite(x))
+    big = float(dtypes.finfo(acc).max)
+    if op == "layer_norm" and 2 * np.log2(float(dtypes.finfo(dt).max)) > np.log2(big):
+        # the storage range is as wide as the accumulation's: the data goes where one pass fails
+        with np.errstate(over="ignore"):
+            assert np.all(np.sum(x * x, axis=1) > big)
+        if dt == "float32":
+            assert np.abs(x).max() > np.sqrt(big)
+
+
+def test_running_statistics_kinds():
+    """far: 32 spreads away; wide: beyond float16's 65504 in float32 parameters (IEEE 754-2019 binary16);
+    at_mean: exactly representable, with x equal to it for a tenth or so of the elements."""
+    base = Case("batch_norm", "float16", (4, 8, 6, 5), "channels_first", mode="eval")
+    from dataclasses import replace
+
+    prec = Precision(params="float32")
+    near = make_inputs(base, prec, 0)
+    far = make_inputs(replace(base, running_values="far"), prec, 0)
+    x = near["x"].astype(np.float64)
+    spread = x.std(axis=(0, 2, 3))
+    assert np.median(np.abs(far["running_mean"] - x.mean(axis=(0, 2, 3))) / spread) > 5
+    wide = make_inputs(replace(base, running_values="wide"), prec, 0)
+    assert np.all(np.abs(wide["running_mean"]) > 65504) and np.all(np.isfinite(wide["running_var"]))
+    at = make_inputs(replace(base, running_values="at_mean"), prec, 0)
+    rm = at["running_mean"].astype(np.float64)
+    assert np.all(rm.astype(np.float16).astype(np.float64) == rm)  # exact in the storage format too
+    eq = at["x"].astype(np.float64) == rm[None, :, None, None]
+    assert 0.03 < eq.mean() < 0.3 and np.all(at["running_var"] == 1.0)
+
+
+def test_constant_gradient():
+    c = Case("layer_norm", "float16", (1 << 17, 4), "trailing", norm_ndim=1, dy="ones")
+    inp = make_inputs(c, Precision(params="float32"), 0)
+    assert np.all(inp["dy"] == 1) and c.param_length == 1 << 17
+    with pytest.raises(ValueError, match="unknown upstream-gradient kind 'twos'"):
+        make_inputs(Case("layer_norm", "float16", (4, 4), "trailing", norm_ndim=1, dy="twos"), Precision(), 0)
+
+
+def test_find_case_names_an_unknown_dtype():
+    """A hostile id with a dtype no format has (the catalog reads each format's range): a KeyError naming
+    the formats, as for an unknown op, never another exception type."""
+    for bad in ("layer_norm/float24/x", "layer_norm//"):
+        with pytest.raises(KeyError, match="is not one of float64, float32"):
+            find_case(bad)

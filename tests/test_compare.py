@@ -165,3 +165,56 @@ def test_scalar_and_empty_outputs():
     e = np.zeros((0, 3))
     r = compare_output("y", np.zeros((0, 3), np.float32), e, _bound(0.0, e.shape), dtype="float32")
     assert r.passed and r.n == 0 and r.budget_used == 0.0
+
+
+# =============================================================================== accepted alternatives
+def test_accepted_alternatives_stand_in_for_the_oracle():
+    """A Bound's Accept entries (tolerances.bound.Accept): where the kernel's value is the accepted one it
+    counts as agreement and is counted per reason; where the alternative is required (``must``), any other
+    value fails with a zero bound; None accepts any non-finite value; an element settled by one entry is not
+    judged again by a later one."""
+    from conformance.tolerances.bound import Accept
+
+    exp = np.array([1.0, 70000.0, -np.inf, 5.0])
+    must = np.array([False, True, False, False])
+    acc = (Accept(np.array([False, False, True, False]), np.full(4, np.nan), "inf group"),
+           Accept(must, np.array([0.0, np.inf, 0.0, 0.0]), "out of range", must=True),
+           Accept(np.array([False, False, False, True]), None, "any non-finite"))
+    b = Bound(output="y", values=np.full(4, 1e-3), formula="test", accept=acc)
+    good = np.array([1.0, np.inf, np.nan, np.nan], dtype=np.float16)
+    r = compare_output("y", good, exp, b, dtype="float16")
+    assert r.passed and r.accepted == {"inf group": 1, "out of range": 1, "any non-finite": 1}, r.message
+    assert "accepted" in r.message and "inf group" in r.message
+    # The required alternative is not met by a finite value, even the largest finite float16 (65504).
+    r = compare_output("y", np.array([1.0, 65504.0, np.nan, 5.0], dtype=np.float16), exp, b, dtype="float16")
+    assert not r.passed and r.mismatched == 1 and r.inf_mismatch == 1
+    # NaN where the oracle is finite and nothing accepts it still fails.
+    r = compare_output("y", np.array([np.nan, np.inf, np.nan, 5.0], dtype=np.float16), exp, b, dtype="float16")
+    assert not r.passed and r.nan_mismatch == 1
+    d = r.to_dict()
+    assert OutputResult.from_dict(json.loads(json.dumps(d))).accepted == r.accepted
+
+
+def test_format_range_facts():
+    """Overflow thresholds under round to nearest (IEEE 754-2019 §4.3.1, §7.4): max + ulp(max)/2, with the
+    tie going beyond max in IEEE formats (65520 -> Inf in binary16) and to max in float8_e4m3fn (464 -> 448,
+    NaN above: OCP 8-bit FP specification v1.0, E4M3 has no infinity; from memory, and ml_dtypes' casts)."""
+    assert dtypes.overflow_threshold("float16") == (65520.0, True)
+    assert dtypes.overflow_threshold("float8_e4m3fn") == (464.0, False)
+    assert dtypes.overflow_threshold("float8_e5m2") == (61440.0, True)
+    assert dtypes.overflow_threshold("float32")[0] == float(np.float32(3.4028234663852886e38)) + 2.0 ** 103
+    assert not dtypes.has_infinity("float8_e4m3fn")
+    assert all(dtypes.has_infinity(f) for f in ("float64", "float32", "float16", "bfloat16", "float8_e5m2"))
+    from conformance.tolerances.ranges import overflow_accepts
+
+    # 452 + 10 stays below 464; 460 and 470 are within 10 of it (either answer); 480 - 10 is beyond it.
+    e = np.array([452.0, 460.0, 470.0, -480.0])
+    sat = overflow_accepts(e, np.full(4, 10.0), "float8_e4m3fn", "saturate")
+    non = overflow_accepts(e, np.full(4, 10.0), "float8_e4m3fn", "nonsaturating")
+    assert sat[0].must and sat[0].mask.tolist() == [False, False, False, True]
+    assert sat[1].mask.tolist() == [False, True, True, False]
+    assert sat[0].value[3] == -448.0 and sat[1].value[1] == 448.0 and np.isnan(non[1].value[1])
+    must = overflow_accepts(np.array([1e4]), np.array([1.0]), "float16", "nonsaturating")
+    assert not must or not must[0].mask.any()
+    must = overflow_accepts(np.array([7e4]), np.array([1.0]), "float16", "nonsaturating")
+    assert must[0].mask.tolist() == [True] and must[0].value[0] == np.inf and must[0].must

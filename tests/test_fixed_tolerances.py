@@ -29,6 +29,7 @@ from conformance.run import RunOptions, run_check
 from conformance.tolerances import output_dtype
 
 from seeded_bugs import BUGS
+from test_no_false_alarms import KNOWN
 
 OUTPUTS = ("y", "mean", "rstd", "running_mean", "running_var", "dx", "dweight", "dbias")
 # torch.testing.assert_close defaults as (atol, rtol) per dtype (torch/testing/_comparison.py).
@@ -85,9 +86,11 @@ def test_fixed_tolerances_on_a_correct_library_kernel():
     """One test for the torch runs, so that one process makes them (7 runs of the tier)."""
     docs = _torch_runs()
     derived = _status(docs["derived"])
-    # The kernel is correct by the derived bounds on every standard case of every dtype but the
-    # NaN/Inf case, where torch saves a NaN mean for an Inf group (see test_no_false_alarms.KNOWN) ...
-    assert derived and all(s == "passed" for cid, s in derived.items() if "/nonfinite/" not in cid), derived
+    # The kernel is correct by the derived bounds on every standard case of every dtype but the cases
+    # whose failures are traced library findings (test_no_false_alarms.KNOWN: large data, eps = 1e-12
+    # in float16) ...
+    known = {cid for lib, cid in KNOWN if lib == "torch"}
+    assert derived and all(s == "passed" for cid, s in derived.items() if cid not in known), derived
     lines = []
     for dt in DTYPES:
         n, k, ids = _alarms(docs["derived"], docs["torch", dt])
@@ -103,8 +106,13 @@ def test_fixed_tolerances_on_a_correct_library_kernel():
     # bfloat16 unit roundoff 2^-8 = 3.9e-3 > 1e-3 (8 significand bits: Google's bfloat16 format), so the
     # rounding of an output alone can exceed the guess: it alarms on most bfloat16 cases ...
     assert k16 >= n16 // 2, lines[-1]
-    # ... while in float32 it is loose enough to be quiet, which is why it misses bugs (below).
-    assert k32 == 0, lines[-1]
+    # ... while in float32 it is loose enough to be quiet, which is why it misses bugs (below); except
+    # where the derived bound itself is vacuous (terms["bound_over_scale"] > 1: the constant group at
+    # eps = 1e-12, whose correct dx may be off by far more than 1e-3, docs/tolerances.md "Limits").
+    vacuous = {c["id"] for c in docs["derived"]["cases"]
+               if any(float(o["bound"]["terms"].get("bound_over_scale", 0.0)) > 1.0 for o in c["outputs"])}
+    _, _, ids32 = _alarms(docs["derived"], docs["guessed", "float32"])
+    assert not set(ids32) - vacuous, (lines[-1], sorted(set(ids32) - vacuous))
 
 
 # Seeded bugs, float32, the standard tier of their op: cases that the derived bounds fail by at least

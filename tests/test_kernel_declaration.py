@@ -14,6 +14,7 @@ from dataclasses import replace
 from pathlib import Path
 
 import jsonschema
+import numpy as np
 import pytest
 
 from conformance.report.markdown import md as md_escape
@@ -201,3 +202,84 @@ def test_unchecked_running_statistics_reach_the_verdict_the_document_and_the_rep
     paths = write_report(doc, tmp_path, peers=None, peers_note="disabled for this test")
     md = paths["markdown"].read_text()
     assert md_escape("running_var (train): updates_running=False") in md  # escaped as all Markdown text
+
+
+# ------------------------------------------------------------------ declarations that say what kernels do
+@pytest.mark.parametrize("value, what", [
+    (Precision(statistics="float12"), r"precision.statistics is 'float12', expected one of"),
+    (Precision(saved=32), r"precision.saved is 32, expected one of"),
+    (Precision(subnormals="ftz"), r"precision.subnormals is 'ftz', expected one of 'keep', 'flush'"),
+    (Precision(subnormals=True), r"precision.subnormals is True"),
+    (Precision(overflow="clip"), r"precision.overflow is 'clip', expected one of 'nonsaturating', 'saturate'"),
+    (Precision(output_summation="worst"), r"precision.output_summation is str, expected a mapping output -> "
+                                          r"summation model"),
+    (Precision(output_summation={"dweigth": "worst"}), r"precision.output_summation names output 'dweigth'"),
+    (Precision(output_summation={"dweight": "atomic"}), r"precision.output_summation\['dweight'\] is 'atomic', "
+                                                        r"expected one of probabilistic, pairwise, worst"),
+    (Precision(output_accumulate={"dweight": "float12"}), r"precision.output_accumulate\['dweight'\] is 'float12'"),
+])
+def test_precision_fields_are_checked(value, what):
+    """Each field of a Precision is checked at load (common practice for a validating tool: a bad
+    declaration costs no run), with a message naming the field, the value and the choices."""
+    with _bad(what):
+        replace(LN, precision=value)
+
+
+def test_y_form_is_checked():
+    with _bad(r"conventions.y_form is 'fused', expected 'centred' or 'folded'"):
+        replace(LN, conventions=replace(LN.conventions, y_form="fused"))
+
+
+def test_new_precision_fields_are_recorded_resolved():
+    """The results document records every field, with its effective value (statistics in the
+    accumulation format and saved statistics in the params format unless declared)."""
+    d = Precision(storage="float16", params="float16").as_dict()
+    assert (d["statistics"], d["saved"], d["subnormals"], d["overflow"], d["output_summation"]) == \
+        ("float32", "float16", "keep", "nonsaturating", {})
+    d = Precision(storage="float16", params="float16", statistics="float16", saved="float32", subnormals="flush",
+                  overflow="saturate", output_summation={"dweight": "worst"}).as_dict()
+    assert (d["statistics"], d["saved"], d["subnormals"], d["overflow"], d["output_summation"]) == \
+        ("float16", "float32", "flush", "saturate", {"dweight": "worst"})
+    assert Precision(output_summation={"dbias": "worst"}).summation_for("dbias") == "worst"
+    assert Precision(summation="pairwise").summation_for("dweight") == "pairwise"
+    assert Conventions().as_dict()["y_form"] == "centred"
+
+
+def _forward_only(rstd_scale):
+    def forward(x, weight, bias, *, eps, normalized_shape):
+        y, mean, rstd = hk.ln_forward(x, weight, bias, eps=eps, normalized_shape=normalized_shape)
+        return y, mean, (rstd * np.float32(rstd_scale)).astype(np.float32)
+
+    return Kernel(name="forward only", op="layer_norm", forward=forward, outputs=("y", "mean", "rstd"))
+
+
+def test_outputs_alone_decide_which_statistics_are_checked():
+    """A forward-only kernel lists mean and rstd in outputs without declaring them saved (it has no
+    backward to give them to): they are checked. Before, outputs could name only the saved statistics."""
+    ln_id = "layer_norm/float32/trailing/12x96/norm_ndim=1/normal/w=random/b=random/eps=1e-05/train/contiguous"
+    good = run_check(_forward_only(1.0), RunOptions(case_ids=(ln_id,)), quiet=True)
+    assert good["verdict"] == "conformant"
+    assert [o["name"] for o in good["cases"][0]["outputs"]] == ["y", "mean", "rstd"]
+    # An rstd off by 1e-3 relative (a few thousand float32 units, IEEE 754-2019 binary32 u = 2^-24)
+    # fails on rstd, and only there.
+    bad = run_check(_forward_only(1.001), RunOptions(case_ids=(ln_id,)), quiet=True)
+    failing = [o["name"] for o in bad["cases"][0]["outputs"] if not o["passed"]]
+    assert failing == ["rstd"]
+    with _bad(r"outputs names \['mean'\], which the declaration does not produce"):
+        Kernel(name="x", op="rms_norm", forward=hk.ln_forward, outputs=("y", "mean"))  # RMS norm has no mean
+
+
+def test_the_report_states_the_declaration_fields():
+    """What the bound is derived from is on the report (common practice for a tolerance report: every
+    setting recorded), in words, where it differs from the default."""
+    from conformance.report.content import kernel_facts
+
+    k = replace(LN, dtypes=("float16",), precision=Precision(params="float16", statistics="float16", saved="float32",
+                                                            subnormals="flush", overflow="saturate",
+                                                            output_summation={"dweight": "worst"}))
+    text = dict(kernel_facts({"kernel": k.declaration()}))["precision float16"]
+    for words in ("statistics rounded to float16 before use", "saved statistics in float32",
+                  "subnormals flushed to zero", "out-of-range results saturate", "summation per output: dweight worst"):
+        assert words in text, text
+    plain = dict(kernel_facts({"kernel": LN.declaration()}))["precision float32"]
+    assert "flushed" not in plain and "saturate" not in plain and "rounded to" not in plain

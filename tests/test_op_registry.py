@@ -20,7 +20,7 @@ import pytest
 from conformance import dtypes, ops
 from conformance.cases import TIERS, catalog, find_case, make_inputs
 from conformance.cases.generators import group_index
-from conformance.cases.model import STRIDE_KINDS, VALUE_KINDS
+from conformance.cases.model import DY_KINDS, RUNNING_VALUE_KINDS, STRIDE_KINDS, VALUE_KINDS
 from conformance.kernel import ENTRY_POINTS, LAYOUTS, Conventions, Kernel, KernelError, Precision, call_with
 from conformance.report.content import coverage_gaps
 from conformance.report.html import render_html
@@ -56,7 +56,8 @@ def test_description_uses_the_harness_vocabulary(name):
     spec = ops.get(name)
     assert set(spec.axes.layouts) <= set(LAYOUTS) | {"trailing"}
     assert set(spec.axes.strides) <= set(STRIDE_KINDS) and "contiguous" in spec.axes.strides
-    assert set(spec.value_kinds) <= set(VALUE_KINDS)
+    assert set(spec.value_kinds) <= set(VALUE_KINDS) and set(spec.range_value_kinds) <= set(VALUE_KINDS)
+    assert set(spec.dy_kinds) <= set(DY_KINDS) and set(spec.running_value_kinds) <= set(RUNNING_VALUE_KINDS)
     assert all(w in PARAM_KINDS and b in PARAM_KINDS for w, b in spec.param_kinds)
     assert spec.default_bias in PARAM_KINDS
     assert set(spec.outputs) <= set(OUTPUTS)
@@ -80,7 +81,12 @@ def test_catalog_serves_every_tier_and_dtype(name):
     # What the report lists as absent must be what the catalog can run (report/content.py: coverage_gaps).
     assert {c.layout for c in std} == set(spec.axes.layouts)
     assert {c.strides for c in std} == set(spec.axes.strides)
-    assert set(spec.value_kinds) <= {c.values for c in std}
+    assert set(spec.value_kinds) | set(spec.range_value_kinds) <= {c.values for c in std}
+    assert set(spec.dy_kinds) <= {c.dy for c in std}
+    # More dy = 1 terms per parameter sum than float16's largest value (IEEE 754-2019 binary16: 65504).
+    assert all(c.param_length > 65504 for c in std if c.dy == "ones")
+    if spec.has_eval:
+        assert set(spec.running_value_kinds) <= {c.running_values for c in std if c.mode == "eval"}
     assert {(m, r) for m, r, _ in spec.modes} <= {(c.mode, c.running) for c in std}
     assert any(c.group_length == 1 << 20 for c in std), "no long reduction (2^20 elements per statistic)"
     for c in (std[0], std[-1]):
@@ -175,7 +181,7 @@ def test_bounds_exist_for_every_output(name):
         inp = make_inputs(c, prec, 0)
         inp64 = {k: None if v is None else np.asarray(v).astype(np.float64) for k, v in inp.items()}
         fwd = ops.oracle_forward(c, conv, inp64)
-        exp = ops.forward_outputs(c, conv, fwd, ("y",), True)
+        exp = ops.forward_outputs(c, conv, fwd, ("y",) + spec.saved, True)
         bwd = ops.oracle_backward(c, conv, inp64)
         exp.update(dx=bwd.dx, dweight=bwd.dweight, dbias=bwd.dbias)
         assert set(exp) == set(outputs), c.id

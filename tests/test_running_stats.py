@@ -175,3 +175,23 @@ def test_cumulative_average_is_the_mean_of_all_batches():
         mag = max(np.max(np.abs(stats)), np.max(np.abs(r0)))
         assert_close(r, np.mean(stats[: k + 1], axis=0), 4 * (k + 2) * U * mag / np.max(np.abs(r)),
                      "cumulative average")
+
+
+def test_cumulative_average_is_each_conventions_momentum():
+    """The cumulative average r' = r + (s - r)/(k + 1) (k = batches_seen before the step; torch's
+    momentum=None with factor 1/num_batches_tracked, docs/conventions.md) is, under each momentum
+    convention, an exponential average with a step-dependent momentum: 1/(k + 1) on the new value
+    ("new"), k/(k + 1) on the old value ("old"). The oracle's cumulative update does not depend on the
+    convention; what a kernel that implements it by passing a momentum must pass is that factor."""
+    rng = np.random.default_rng(5)
+    r, s = rng.normal(size=6), rng.normal(size=6)
+    for k in (0, 1, 3, 99):
+        cum = {c: refnorm.running_update(r, s, momentum=None, batches_seen=k, momentum_convention=c)
+               for c in ("new", "old")}
+        assert np.array_equal(cum["new"], cum["old"])
+        new = refnorm.running_update(r, s, momentum=1.0 / (k + 1), momentum_convention="new")
+        old = refnorm.running_update(r, s, momentum=k / (k + 1), momentum_convention="old")
+        # Three roundings on magnitudes up to max|r| + max|s| (Higham 2002, §2.1, one u each).
+        tol = 8 * U * (np.max(np.abs(r)) + np.max(np.abs(s))) / np.max(np.abs(cum["new"]))
+        assert_close(new, cum["new"], tol, f"cumulative = new convention with momentum 1/({k}+1)")
+        assert_close(old, cum["new"], tol, f"cumulative = old convention with momentum {k}/({k}+1)")

@@ -571,12 +571,21 @@ def test_running_statistics(op, convention, momentum):
 
 @pytest.mark.parametrize("fused", [False, True])
 @pytest.mark.parametrize("op", ["batch_norm", "instance_norm"])
-def test_eval_mode_including_the_fused_scale_shift_form(op, fused):
+def test_eval_mode_centred_and_folded_forms(op, fused):
     # Eval y = x * (w r) + (b - mean w r) is common practice for inference kernels; its rounding
-    # (u |x| w r and u |mean| w r) is part of the bound's u_o (|x| + |mu|) term.
+    # (u |x| w r and u |mean| w r, Higham 2002 §2.1's model applied to each operation) is the
+    # folded form's u_o (|x| + |mu|) term, which a kernel declares with y_form="folded". The
+    # centred form (x - mean) w r + b (the default) rounds only u |x - mean| w r.
     case = Case(op=op, dtype="float32", shape=(4, 3, 6, 6), layout="channels_first", mode="eval", values="cancellation")
-    res, _ = check(case, Precision(), outputs=["y", "dx", "dweight", "dbias"], fused_eval=fused)
+    conv = Conventions(y_form="folded" if fused else "centred")
+    res, bounds = check(case, Precision(), conv, outputs=["y", "dx", "dweight", "dbias"], fused_eval=fused)
     assert all(r.passed for r in res.values()), {k: r.message for k, r in res.items() if not r.passed}
+    # The report's number: how much more the folded form may err on this data (|mean| / spread ~ 1e3).
+    assert bounds["y"].terms["folded_over_centred"] > 100
+    if fused:
+        # The same folded kernel declared centred fails: its cancellation is not a centred kernel's error.
+        res, _ = check(case, Precision(), Conventions(), outputs=["y"], fused_eval=True)
+        assert res["y"].budget_used > 10, res["y"].message
 
 
 def test_sequential_summation_needs_the_worst_case_model_on_long_cancellation_data():
@@ -877,3 +886,46 @@ def budget_table() -> list[str]:
 if __name__ == "__main__":  # pragma: no cover - prints the table of docs/tolerances.md (about a minute)
     print("\n".join(budget_table()))
     sys.exit(0)
+
+
+# =============================================================================== declarations and ranges
+def test_summation_model_per_output():
+    """A kernel that reduces its forward by a tree (Precision.summation = "pairwise": Higham 2002, §4.2) and
+    accumulates dbias by sequential atomics of nearly equal terms needs the worst-case model for dbias only
+    (Higham 2002, Lemma 3.1; the probabilistic and tree models do not describe long sequential runs of nearly
+    equal terms, docs/tolerances.md "Limits"): Precision.output_summation = {"dbias": "worst"}."""
+    case = Case(op="layer_norm", dtype="float32", shape=(1 << 16, 4), layout="trailing", norm_ndim=1)
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal(case.shape).astype(np.float32)
+    dy = (1e4 + rng.standard_normal(case.shape)).astype(np.float32)
+    inp64 = {"x": x.astype(np.float64), "dy": dy.astype(np.float64), "weight": None, "bias": np.zeros(4)}
+    exp = {"dbias": dy.astype(np.float64).sum(axis=0), "mean": x.astype(np.float64).mean(axis=1)}
+    seq = np.cumsum(dy, axis=0, dtype=np.float32)[-1]   # strictly sequential float32 additions
+    tree = vsum(x, "float32", "tree", axis=1) / np.float32(4)
+    tree_prec = Precision(summation="pairwise")
+    b = derive_bounds(case, tree_prec, Conventions(), inp64, exp)
+    assert compare_output("dbias", seq, exp["dbias"], b["dbias"], dtype="float32").budget_used > 10
+    mixed = Precision(summation="pairwise", output_summation={"dbias": "worst"})
+    b2 = derive_bounds(case, mixed, Conventions(), inp64, exp)
+    assert compare_output("dbias", seq, exp["dbias"], b2["dbias"], dtype="float32").passed
+    # The forward keeps its tree model: the mean's bound is the same under both declarations.
+    assert np.array_equal(b["mean"].values, b2["mean"].values)
+    assert compare_output("mean", tree.astype(np.float32), exp["mean"], b2["mean"], dtype="float32").passed
+
+
+@pytest.mark.parametrize("values", ["large", "near_overflow", "cancellation"])
+def test_data_beyond_what_a_precision_must_handle_is_skipped(values):
+    """A float16-accumulating kernel cannot form sum |x| or sum (x - mu)^2 beyond 65504 (IEEE 754-2019 binary16,
+    §7.4): such a case is outside what its declared precision must handle (conformance/tolerances/ranges.py)
+    and is skipped with the reason, never failed; the default float32 accumulation runs it."""
+    from conformance.run.execute import execute_case
+    import seeded_bugs as sb
+
+    case = Case(op="layer_norm", dtype="float16", shape=(12, 96), layout="trailing", norm_ndim=1, values=values)
+    low = sb.NumpyNorm("layer_norm", "float16", "float32").kernel("float16 sums", precision={"accumulate": "float16"})
+    r = execute_case(low, case, 0)
+    assert r.status == "skipped" and "beyond the range a kernel accumulating in float16 must handle" in r.message
+    ok = execute_case(sb.correct_kernel("layer_norm", "float16", "float32"), case, 0)
+    assert ok.status == "passed", ok.message
+    range_used = max(float(o["bound"]["terms"]["range_used"]) for o in ok.to_dict()["outputs"] if o["name"] == "y")
+    assert 0.0 < range_used <= 1.0

@@ -42,13 +42,16 @@ kernel declares summation="worst". The bias added after RMSNormalization is
 differentiated by TensorFlow, whose float16 sums accumulate in float16
 (declared for that dbias).
 
-Properties the harness reports against Keras/TensorFlow itself: TensorFlow
-flushes subnormals to zero on the CPU (the subnormal cases fail on dweight),
-and Keras forms y as x * inv + (beta - mean * inv) with inv = rsqrt(var + eps)
-* gamma (tf.nn.batch_normalization and Keras's layer norm), not
-(x - mean) * inv + beta: when |mean| is large against the spread the rounding
-error scales with |x| * inv instead of |y|, and the eval-mode gradient of
-gamma cancels between two large sums.
+TensorFlow flushes subnormals to zero on the CPU (measured: 1e-39 * 1000 is 0
+in float32): every kernel declares subnormals="flush". Keras forms y as
+x * inv + (beta - mean * inv) with inv = rsqrt(var + eps) * gamma
+(tf.nn.batch_normalization and Keras's layer norm), not (x - mean) * inv + beta:
+declared y_form="folded" (batch, layer and group norm); when |mean| is large
+against the spread the rounding error scales with |x| * inv instead of |y|.
+What the harness reports against Keras/TensorFlow itself: the eval-mode
+gradient of gamma, the autograd of that form, cancels between two large sums,
+and the gradient through the variance is partly lost on data of spread about
+1e18 (docs/library-precision.md).
 """
 
 from __future__ import annotations
@@ -101,8 +104,10 @@ def _precision(extra_rounding: tuple[str, ...] = (), fp16_sums: tuple[str, ...] 
         # "worst": TensorFlow's CPU reductions behave like recursive summation, not like the
         # probabilistic model: tf.reduce_mean of 2^21 float32 values 1e4 + N(0, 1) errs by 1.36%,
         # 20 times lambda sqrt(n) u (lambda = 8) and within n u = 12.5% (docs/library-precision.md).
+        # "flush": TensorFlow flushes subnormal operands and results to zero on the CPU (measured:
+        # 1e-39 * 1000 gives 0 in float32; docs/library-precision.md).
         out[dt] = Precision(storage=dt, params=dt, accumulate="float32" if low else dt, output_accumulate=oa,
-                            summation="worst")
+                            summation="worst", subnormals="flush")
     return out
 
 
@@ -200,7 +205,7 @@ def batch_norm() -> Kernel:
         name="keras-cpu batch_norm", op="batch_norm", forward=forward, forward_eval=forward_eval,
         backward=backward, backward_eval=backward_eval, outputs=("y", "running_mean", "running_var"),
         dtypes=DTYPES, conventions=Conventions(momentum_convention="old", running_var_estimator="biased",
-                                               running="return"),
+                                               running="return", y_form="folded"),
         precision=_precision(), momentum_none=False,
         device="cpu",
         notes=_notes(keras, tf, "keras.layers.BatchNormalization; momentum is Keras's own (weights the old value)"),
@@ -231,7 +236,7 @@ def layer_norm() -> Kernel:
         return run.grads(dy, (run.layer.gamma, run.layer.beta))
 
     return Kernel(name="keras-cpu layer_norm", op="layer_norm", forward=forward, backward=backward,
-                  dtypes=DTYPES, precision=_precision(),
+                  dtypes=DTYPES, precision=_precision(), conventions=Conventions(y_form="folded"),
                   device="cpu", notes=_notes(keras, tf, "keras.layers.LayerNormalization(axis=trailing axes)"))
 
 
@@ -259,7 +264,7 @@ def _group_kernel(name: str, op: str, groups_of) -> Kernel:
         return run.grads(dy, (run.layer.gamma, run.layer.beta))
 
     return Kernel(name=name, op=op, forward=forward, backward=backward, dtypes=DTYPES, precision=_precision(),
-                  updates_running=False, momentum_none=False,
+                  updates_running=False, momentum_none=False, conventions=Conventions(y_form="folded"),
                   device="cpu", notes=_notes(keras, tf, "keras.layers.GroupNormalization"
                                + (" (groups=-1: instance normalization, no running statistics)"
                                   if op == "instance_norm" else "")))

@@ -66,11 +66,16 @@ def _cpu_precision(op: str, params: str) -> dict[str, Precision]:
             continue
         p = dt if params == "storage" else "float32"
         oa: dict[str, str] = {}
+        stats = None
         if params == "storage" and op in ("batch_norm", "instance_norm"):
-            # ATen's batch-norm statistics pass (param_t = the storage format) rounds the mean, the
-            # sum of squared deviations, the variance, the momentum and each running-update product
-            # to that format, and y is computed from the rounded mean and rstd.
-            oa = {"y": dt, "mean": dt, "rstd": dt, "running_mean": dt, "running_var": dt, "dx": dt}
+            # ATen's batch-norm statistics pass (param_t = the storage format) sums in float32 and rounds
+            # the mean, the sum of squared deviations, the variance and rstd to that format, and y and
+            # dx are computed from the rounded mean and rstd (statistics=dt); the momentum and each
+            # running-update product are rounded to that format too (running_* arithmetic in dt), and
+            # on non-contiguous inputs y's arithmetic is too (measured: bfloat16 transposed y exceeds a
+            # float32-arithmetic bound 1.25 times).
+            stats = dt
+            oa = {"y": dt, "running_mean": dt, "running_var": dt, "dx": dt}
         if op == "batch_norm":
             # Its backward on non-contiguous inputs forms k = dotp * invstd^2 / n, the mean of dy and
             # dx itself in the storage format (scalar_t arithmetic), and takes dbias from at::sum of
@@ -84,7 +89,7 @@ def _cpu_precision(op: str, params: str) -> dict[str, Precision]:
         elif op == "rms_norm":
             # F.rms_norm has no bias: the adapter's y + bias rounds y once more in the storage format.
             oa = {"y": dt}
-        out[dt] = Precision(storage=dt, params=p, accumulate="float32", output_accumulate=oa)
+        out[dt] = Precision(storage=dt, params=p, accumulate="float32", output_accumulate=oa, statistics=stats)
     return out
 
 
@@ -389,7 +394,7 @@ def batch_norm(params: str = "storage", device: str = "cpu", register: str = "",
         op="batch_norm", forward=forward, forward_eval=forward_eval, backward=backward, backward_eval=backward_eval,
         outputs=("y", "mean", "rstd"), dtypes=tuple(tt.precision("batch_norm")),
         conventions=Conventions(momentum_convention="new", running_var_estimator="unbiased",
-                                saved=("mean", "rstd"), running="inplace"),
+                                saved=("mean", "rstd"), running="inplace", y_form="folded"),
         precision=tt.precision("batch_norm"), momentum_none=True, min_reduction=2,
         device=tt.device_name,
         notes=tt.notes("torch.native_batch_norm (train), F.batch_norm (eval); float16/bfloat16 with "
@@ -427,7 +432,7 @@ def layer_norm(params: str = "storage", device: str = "cpu", register: str = "",
     return Kernel(
         name=tt.label("layer_norm"),
         op="layer_norm", forward=forward, backward=backward, outputs=("y", "mean", "rstd"),
-        dtypes=tuple(tt.precision("layer_norm")), conventions=Conventions(saved=("mean", "rstd")),
+        dtypes=tuple(tt.precision("layer_norm")), conventions=Conventions(saved=("mean", "rstd"), y_form="folded"),
         precision=tt.precision("layer_norm"),
         device=tt.device_name,
         notes=tt.notes("torch.native_layer_norm (forward), F.layer_norm under autograd (backward); "
@@ -469,7 +474,7 @@ def group_norm(params: str = "storage", device: str = "cpu", register: str = "",
     return Kernel(
         name=tt.label("group_norm"),
         op="group_norm", forward=forward, backward=backward, outputs=("y", "mean", "rstd"),
-        dtypes=tuple(tt.precision("group_norm")), conventions=Conventions(saved=("mean", "rstd")),
+        dtypes=tuple(tt.precision("group_norm")), conventions=Conventions(saved=("mean", "rstd"), y_form="folded"),
         min_reduction=2,
         precision=tt.precision("group_norm"),
         device=tt.device_name,
@@ -540,7 +545,7 @@ def instance_norm(params: str = "storage", device: str = "cpu", register: str = 
         backward_eval=backward_eval, outputs=("y", "mean", "rstd"),
         dtypes=tuple(tt.precision("instance_norm")),
         conventions=Conventions(momentum_convention="new", running_var_estimator="unbiased",
-                                saved=("mean", "rstd"), running="inplace"),
+                                saved=("mean", "rstd"), running="inplace", y_form="folded"),
         precision=tt.precision("instance_norm"), momentum_none=False, min_reduction=2,
         device=tt.device_name,
         notes=tt.notes("F.instance_norm (torch reshapes to a batch norm of N*C channels); the saved "

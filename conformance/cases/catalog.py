@@ -2,7 +2,10 @@
 
 smoke      a handful of cases per op and dtype, seconds;
 standard   the default and the CI gate: edge shapes, every value kind, layouts and
-           strides, parameters, modes, and long reductions (2^20 elements per group);
+           strides, parameters, modes, long reductions (2^20 elements per group), and
+           the range cases (large magnitudes, a tiny eps on zero-variance groups, a
+           constant upstream gradient over 2^17-term parameter sums, running statistics
+           far from the batch's, outside the storage range and equal to x);
 exhaustive the cross product of the standard axes on more shapes.
 
 What varies per op (shapes, layouts, stride, value and parameter kinds, modes) is read
@@ -14,11 +17,14 @@ the same order, and a case's data depends only on the run's seed and the case id
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import replace
 from typing import Iterable, Iterator
 
+from .. import dtypes as _dtypes
 from .. import ops as _ops
 from ..ops import OpSpec
+from ..ops.spec import TINY_EPS, TINY_EPS_VALUES
 from .model import TIERS, Case
 
 __all__ = ["catalog", "find_case"]
@@ -45,9 +51,20 @@ def _mid(spec: OpSpec, dtype: str, tier: str, layout: str | None = None) -> Case
     return _base(spec, dtype, shape, layout or spec.axes.layouts[0], k, tier)
 
 
+def _squares_fit(dtype: str) -> bool:
+    """Whether the square of the storage format's largest value fits its default accumulation format
+    (float32 for narrower formats) with room for sums: float16 and float8 (65504^2 = 4.3e9 in float32),
+    not float32, bfloat16 or float64 (their near-overflow squares overflow; the "large" cases cover
+    them up to where a correct kernel must still work, docs/tolerances.md "Ranges")."""
+    from ..kernel import Precision
+
+    acc = Precision(storage=dtype).resolved().accumulate
+    return 2.0 * math.log2(float(_dtypes.finfo(dtype).max)) + 20.0 < math.log2(float(_dtypes.finfo(acc).max))
+
+
 def _value_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
     kinds = list(spec.value_kinds)
-    if dtype in ("float16", "float8_e4m3fn", "float8_e5m2"):
+    if _squares_fit(dtype):
         kinds.append("near_overflow")  # only where the accumulation format has range to spare
     for k in kinds:
         yield replace(_mid(spec, dtype, tier), values=k)
@@ -95,6 +112,24 @@ def _long_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
     yield replace(base, values="cancellation", running=spec.long_running)
 
 
+def _range_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
+    """Where real bugs live at the ends of the ranges (docs/tolerances.md, "Ranges"): large magnitudes,
+    an eps that the narrow formats cannot hold on zero-variance groups, dy = 1 over parameter sums
+    longer than float16's largest value, and eval-mode running statistics unlike the batch's."""
+    m = _mid(spec, dtype, tier)
+    for k in spec.range_value_kinds:
+        yield replace(m, values=k)
+    for k in TINY_EPS_VALUES:
+        yield replace(m, values=k, eps=TINY_EPS)
+    shape, k = spec.shapes.long_params or spec.shapes.long
+    base = _base(spec, dtype, shape, spec.axes.layouts[0], k, tier)
+    for d in spec.dy_kinds:
+        yield replace(base, dy=d)
+    if spec.has_eval:
+        for r in spec.running_value_kinds:
+            yield replace(m, mode="eval", running_values=r)
+
+
 # ---------------------------------------------------------------- tiers
 def _smoke(spec: OpSpec, dtype: str) -> Iterator[Case]:
     yield from _shape_cases(spec, dtype, "smoke")
@@ -107,7 +142,7 @@ def _smoke(spec: OpSpec, dtype: str) -> Iterator[Case]:
 
 
 def _standard(spec: OpSpec, dtype: str) -> Iterator[Case]:
-    for gen in (_shape_cases, _value_cases, _param_cases, _stride_cases, _mode_cases, _long_cases):
+    for gen in (_shape_cases, _value_cases, _param_cases, _stride_cases, _mode_cases, _long_cases, _range_cases):
         yield from gen(spec, dtype, "standard")
 
 
@@ -156,6 +191,8 @@ def find_case(case_id: str, tiers: Iterable[str] = TIERS) -> Case:
     op, dt = parts[0], parts[1]
     if _ops.find(op) is None:
         raise KeyError(f"no case with id {case_id!r}: op {op!r} is not one of {', '.join(_ops.OPS)}")
+    if dt not in _dtypes.FORMATS:
+        raise KeyError(f"no case with id {case_id!r}: dtype {dt!r} is not one of {', '.join(_dtypes.FORMATS)}")
     for t in tiers:
         for c in catalog([op], [dt], t):
             if c.id == case_id:

@@ -12,7 +12,7 @@ from ..kernel import Precision
 from ..ops.axes import statistic_index
 from .model import Case
 
-__all__ = ["make_inputs", "group_index", "laid_out", "CANCELLATION"]
+__all__ = ["make_inputs", "group_index", "laid_out", "CANCELLATION", "LARGE_OFFSET"]
 
 #: (mean, spread) of "cancellation" values per storage format: the mean is many
 #: spreads away (condition number kappa = sqrt(1 + mean^2/var) of the variance,
@@ -25,6 +25,24 @@ CANCELLATION = {
     "float8_e4m3fn": (64.0, 8.0),
     "float8_e5m2": (256.0, 64.0),
 }
+
+
+#: "large" values of centred ops: x = L (+-LARGE_OFFSET + z), z standard normal clipped to +-5, so the
+#: mean is 64 spreads away and a one-pass sum of x^2 = n L^2 (64^2 + 1) overflows where the two-pass
+#: sum of squared deviations n L^2 stays below 1/16 of the accumulation format's largest value.
+LARGE_OFFSET = 64.0
+
+
+def _large_scale(case: Case) -> float:
+    """L of the "large" values: the largest spread whose second-pass sum n L^2 is 1/16 of the default
+    accumulation format's largest value M_a (so max(S_1, S_2) <= M_a with room for a sample variance
+    above L^2: ranges.py), within half the storage format's range for |x| <= L (64 + 5) (or 5 L for RMS
+    norm, whose statistic is the sum of squares itself)."""
+    acc = Precision(storage=case.dtype).resolved().accumulate
+    m_a = float(dtypes.finfo(acc).max)
+    m_s = float(dtypes.finfo(case.dtype).max)
+    reach = (LARGE_OFFSET + 5.0) if ops.get(case.op).centered else 5.0
+    return min(float(np.sqrt(m_a / (16.0 * case.group_length))), 0.5 * m_s / reach)
 
 
 def group_index(case: Case) -> np.ndarray:
@@ -55,6 +73,14 @@ def _values(case: Case, rng: np.random.Generator) -> np.ndarray:
         return rng.uniform(-1.0, 1.0, size=shape) * tiny
     if kind == "zeros":
         return np.zeros(shape)
+    if kind == "large":
+        scale = _large_scale(case)
+        z = np.clip(rng.standard_normal(shape), -5.0, 5.0)
+        if not ops.get(case.op).centered:
+            return scale * z
+        gi = group_index(case)
+        sign = rng.choice([-1.0, 1.0], size=int(gi.max()) + 1)[gi]
+        return scale * (LARGE_OFFSET * sign + z)
     if kind == "nonfinite":
         x = rng.standard_normal(shape)
         flat = x.reshape(-1)
@@ -101,17 +127,67 @@ def laid_out(a: np.ndarray, strides: str) -> np.ndarray:
     raise ValueError(f"unknown stride kind {strides!r}")
 
 
-def _running(case: Case, x: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """Running statistics near the data's own (so eval-mode outputs stay O(1)), per channel."""
+def _running(case: Case, x: np.ndarray, rng: np.random.Generator, params: str) -> tuple[np.ndarray, np.ndarray]:
+    """Running statistics per channel, by ``case.running_values``:
+
+    near     near the data's own (so eval-mode outputs stay O(1));
+    far      the mean 32 spreads away, the variance 10^U(-1, 1) times the data's;
+    wide     outside the storage format's range where the params format has it: |mean| in
+             [R/2, R], R = min(4 M_s, M_p / 4, M_a / (16 m)), the variance near min((R/4)^2, M_p / 4),
+             so that y = (x - mean) / sqrt(var) stays of order 4 (a kernel that converts them to the
+             storage format overflows) and the backward's sums of dy (x - mean) over the m terms of a
+             parameter stay inside the default accumulation format (M_a: ranges.py);
+    at_mean  the mean +-1.5 2^(p-3) (p: the storage format's significand bits; at most M_s / 8),
+             exactly representable, the variance 1: x is drawn by ``_at_mean`` on the grid of that
+             mean's spacing, equal to it for about 10% of the elements (y = bias exactly there,
+             where x * scale + (bias - mean * scale) cancels).
+    """
     c = case.channels
+    kind = case.running_values
+    if kind == "wide":
+        acc = Precision(storage=case.dtype).resolved().accumulate
+        m_s, m_p, m_a = (float(dtypes.finfo(f).max) for f in (case.dtype, params, acc))
+        reach = min(4.0 * m_s, 0.25 * m_p, m_a / (16.0 * case.param_length))
+        rm = rng.choice([-1.0, 1.0], size=c) * rng.uniform(0.5, 1.0, size=c) * reach
+        rv = min(reach / 4.0, float(np.sqrt(0.25 * m_p))) ** 2 * rng.uniform(0.5, 1.0, size=c)
+        return rm, rv
+    if kind == "at_mean":
+        return _at_mean_stats(case, rng), np.ones(c)
     ax = case.channel_axis
     xm = np.moveaxis(np.where(np.isfinite(x), x, 0.0), ax, 0).reshape(c, -1)
     mean = xm.mean(axis=1)
     var = xm.var(axis=1)
     scale = np.sqrt(var) + 1e-3
+    if kind == "far":
+        rm = mean + 32.0 * scale * rng.standard_normal(c)
+        rv = (var + 0.05 * scale**2) * 10.0 ** rng.uniform(-1.0, 1.0, size=c)
+        return rm, rv
+    if kind != "near":
+        raise ValueError(f"unknown running-statistic kind {kind!r}")
     rm = mean + 0.1 * scale * rng.standard_normal(c)
     rv = var * rng.uniform(0.8, 1.25, size=c) + 0.05 * scale**2
     return rm, rv
+
+
+def _at_mean_exponent(dtype: str) -> int:
+    fi = dtypes.finfo(dtype)
+    p = int(fi.nmant) + 1
+    return min(p - 3, int(np.floor(np.log2(float(fi.max) / 8.0))) - 1)
+
+
+def _at_mean_stats(case: Case, rng: np.random.Generator) -> np.ndarray:
+    """+-1.5 2^E per channel (E from _at_mean_exponent): 1.1 in binary, exact in every format here."""
+    return rng.choice([-1.0, 1.0], size=case.channels) * 1.5 * 2.0 ** _at_mean_exponent(case.dtype)
+
+
+def _at_mean(case: Case, rm: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """x around the running mean rm (per channel) on the grid of rm's spacing in the storage format,
+    2^(E + 1 - p): rm + spacing round(4 z), z standard normal, so x = rm exactly where round(4 z) = 0."""
+    fi = dtypes.finfo(case.dtype)
+    step = 2.0 ** (_at_mean_exponent(case.dtype) + 1 - (int(fi.nmant) + 1))
+    sh = [1] * len(case.shape)
+    sh[case.channel_axis] = case.channels
+    return rm.reshape(sh) + step * np.round(4.0 * rng.standard_normal(case.shape))
 
 
 def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
@@ -125,6 +201,10 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
     rng = np.random.default_rng(case.seed_for(seed))
     x64 = _values(case, rng)
     dy64 = rng.standard_normal(case.shape)
+    if case.dy == "ones":  # the gradient of a sum loss; the draw above keeps the stream of the other inputs
+        dy64 = np.ones(case.shape)
+    elif case.dy != "normal":
+        raise ValueError(f"unknown upstream-gradient kind {case.dy!r}")
     spec = ops.get(case.op)
     ps = spec.axes.param_shape(case)
     w64 = _param(case.weight, ps, rng, "weight")
@@ -142,7 +222,9 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
         "running_var": None,
     }
     if spec.has_eval and (case.mode == "eval" or case.running):
-        rm, rv = _running(case, x.astype(np.float64), rng)
+        rm, rv = _running(case, x.astype(np.float64), rng, p.params)
         out["running_mean"] = rm.astype(pt)
         out["running_var"] = rv.astype(pt)
+        if case.running_values == "at_mean":
+            out["x"] = laid_out(_at_mean(case, rm, rng).astype(st), case.strides)
     return out

@@ -8,7 +8,7 @@ from dataclasses import asdict, dataclass, field
 
 from .. import ops
 
-__all__ = ["Case", "TIERS", "VALUE_KINDS", "STRIDE_KINDS"]
+__all__ = ["Case", "TIERS", "VALUE_KINDS", "STRIDE_KINDS", "DY_KINDS", "RUNNING_VALUE_KINDS"]
 
 TIERS = ("smoke", "standard", "exhaustive")
 VALUE_KINDS = (
@@ -20,7 +20,10 @@ VALUE_KINDS = (
     "subnormal",     # magnitudes in the storage format's subnormal range
     "zeros",         # exact zeros
     "nonfinite",     # normal values with a few NaN and +-Inf
+    "large",         # large magnitudes, up to what a correct kernel of the format must handle
 )
+DY_KINDS = ("normal", "ones")      # the upstream gradient: standard normal, or 1 everywhere
+RUNNING_VALUE_KINDS = ("near", "far", "wide", "at_mean")  # eval's running statistics (generators)
 STRIDE_KINDS = ("contiguous", "transposed", "sliced", "reversed", "channels_last_memory")
 
 
@@ -39,6 +42,10 @@ class Case:
         fastest, as torch's channels_last memory format).
     mode : "train" | "eval" (eval: batch/instance norm with running statistics).
     running : train mode also updates running statistics.
+    dy : the upstream gradient's kind, "normal" or "ones" (part of the id only when not "normal").
+    running_values : the running statistics' kind, "near" (near the batch's own), "far", "wide"
+        (outside the storage format's range) or "at_mean" (x equal to the running mean); part of
+        the id only when not "near".
     """
 
     op: str
@@ -56,17 +63,24 @@ class Case:
     strides: str = "contiguous"
     groups: int = 0             # group norm only
     norm_ndim: int = 0          # layer/RMS norm only
+    dy: str = "normal"
+    running_values: str = "near"
     tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
     def id(self) -> str:
-        """Readable stable id: op/dtype/layout/shape/values/w=/b=/eps=/mode[/momentum]/strides."""
+        """Readable stable id: op/dtype/layout/shape/values[/dy=]/w=/b=/eps=/mode[/running=][/momentum]/strides."""
         parts = [self.op, self.dtype, self.layout, "x".join(map(str, self.shape))]
         if ops.get(self.op).axes.takes_groups:
             parts.append(f"groups={self.groups}")
         if self.norm_ndim:
             parts.append(f"norm_ndim={self.norm_ndim}")
-        parts += [self.values, f"w={self.weight}", f"b={self.bias}", f"eps={self.eps:g}", self.mode]
+        parts.append(self.values)
+        if self.dy != "normal":
+            parts.append(f"dy={self.dy}")
+        parts += [f"w={self.weight}", f"b={self.bias}", f"eps={self.eps:g}", self.mode]
+        if self.running_values != "near":
+            parts.append(f"running={self.running_values}")
         if self.running and self.mode == "train":
             m = "cumulative" if self.momentum is None else f"{self.momentum:g}"
             parts.append(f"momentum={m}" + (f",seen={self.batches_seen}" if self.momentum is None else ""))

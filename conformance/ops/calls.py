@@ -16,6 +16,7 @@ import numpy as np
 import refnorm
 
 from .registry import get
+from .spec import STATISTICS
 
 if TYPE_CHECKING:
     from ..cases.model import Case
@@ -73,11 +74,14 @@ def saved_form(name: str, fwd: refnorm.NormForward, case: Case) -> np.ndarray:
 
 def forward_outputs(case: Case, conv: Conventions, fwd: refnorm.NormForward, declared: tuple[str, ...],
                     updates_running: bool) -> dict[str, np.ndarray]:
-    """The oracle's values of the forward outputs the kernel is checked on for this case."""
+    """The oracle's values of the forward outputs the kernel is checked on for this case: y, and in
+    training every statistic ``declared`` names (the kernel's outputs decide what is checked, whether or
+    not backward receives them) and the running statistics."""
     out = {"y": fwd.y}
     if case.mode == "train":
-        for s in conv.saved:
-            out[s] = saved_form(s, fwd, case)
+        for s in declared:
+            if s in STATISTICS:
+                out[s] = saved_form(s, fwd, case)
         if case.running and updates_running and get(case.op).has_eval:
             out["running_mean"] = fwd.running_mean
             out["running_var"] = fwd.running_var

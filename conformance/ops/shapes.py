@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from .spec import CatalogShapes
 
-__all__ = ["LONG", "channel_shapes", "feature_shapes"]
+__all__ = ["LONG", "LONG_PARAMS", "channel_shapes", "feature_shapes"]
 
 #: Elements per statistic of the standard tier's long reductions.
 LONG = 1 << 20
@@ -42,15 +42,26 @@ FEATURE_STANDARD = (
 FEATURE_EXHAUSTIVE = (((32, 4096), 1), ((4, 7, 9, 11), 2), ((1, 50257), 1))
 
 
+#: Terms per dweight/dbias sum of the constant-gradient case: 2^17, above float16's largest value
+#: 65504 (IEEE 754-2019 binary16), so that dbias = sum(dy = 1) overflows a float16 accumulator.
+LONG_PARAMS = 1 << 17
+#: Channel ops: N * spatial = 2^17 terms per channel (one channel per group for group norm).
+CHANNEL_LONG_PARAMS = ((2, 2, 256, 256), 2)
+#: Layer and RMS norm: 2^17 rows of 4 features.
+FEATURE_LONG_PARAMS = ((LONG_PARAMS, 4), 1)
+
+
 def channel_shapes(long: tuple[tuple[int, ...], int], extra: tuple = ()) -> CatalogShapes:
     """The channel ops' shapes; ``long`` has 2^20 elements per statistic of the op; ``extra``
     standard shapes only one op has (appended after the shared ones)."""
     return CatalogShapes(smoke=CHANNEL_SMOKE, standard=CHANNEL_STANDARD + tuple(extra),
                          exhaustive=CHANNEL_EXHAUSTIVE, mid=((4, 8, 6, 5), 4),
-                         long_cancellation=((8, 16, 12, 12), 4, "channels_last"), long=long)
+                         long_cancellation=((8, 16, 12, 12), 4, "channels_last"), long=long,
+                         long_params=CHANNEL_LONG_PARAMS)
 
 
 def feature_shapes() -> CatalogShapes:
     """Layer and RMS norm's shapes."""
     return CatalogShapes(smoke=FEATURE_SMOKE, standard=FEATURE_STANDARD, exhaustive=FEATURE_EXHAUSTIVE,
-                         mid=((12, 96), 1), long_cancellation=((4, 2048), 1, "trailing"), long=((2, LONG), 1))
+                         mid=((12, 96), 1), long_cancellation=((4, 2048), 1, "trailing"), long=((2, LONG), 1),
+                         long_params=FEATURE_LONG_PARAMS)

@@ -14,7 +14,8 @@ from typing import Any, Callable, Protocol
 from .axes import View
 
 __all__ = ["OpSpec", "CatalogShapes", "Axes", "STATISTICS", "SAVED_FORMS", "GRADS", "RUNNING_OUTPUTS",
-           "RUNNING_MODES", "VALUE_KINDS", "PARAM_KINDS"]
+           "RUNNING_MODES", "VALUE_KINDS", "PARAM_KINDS", "RANGE_VALUE_KINDS", "TINY_EPS", "TINY_EPS_VALUES",
+           "DY_KINDS", "RUNNING_VALUE_KINDS"]
 
 #: Forms of the saved dispersion statistic: rstd = 1/sqrt(var+eps), var (biased),
 #: var_unbiased (M2/(n-1), what TF's fused_batch_norm returns), std = sqrt(var+eps).
@@ -35,6 +36,19 @@ RUNNING_MODES = (("train", False, "training without running statistics"),
 VALUE_KINDS = ("normal", "cancellation", "constant", "heavy_tail", "subnormal", "zeros", "nonfinite")
 #: (weight, bias) kinds of the catalog's parameter cases, in catalog order.
 PARAM_KINDS = (("none", "none"), ("random", "none"), ("zero", "random"), ("negative", "zero"), ("ones", "random"))
+#: The range cases (catalog order, after every other standard case; docs/tolerances.md, "Ranges"):
+#: x of large magnitude up to what a correct kernel must handle ...
+RANGE_VALUE_KINDS = ("large",)
+#: ... an eps below the smallest subnormal of float16 and float8 (BERT-style layer norm's 1e-12,
+#: from memory) on the zero-variance value kinds ...
+TINY_EPS = 1e-12
+TINY_EPS_VALUES = ("constant", "zeros")
+#: ... a constant upstream gradient (dy = 1, the gradient of a sum loss) over the long parameter
+#: reduction ("normal" is every other case's dy) ...
+DY_KINDS = ("normal", "ones")
+#: ... and, for ops with an eval mode, running statistics other than near the batch's own ("near",
+#: every other case's): far from them, outside the storage format's range, and equal to x.
+RUNNING_VALUE_KINDS = ("near", "far", "wide", "at_mean")
 
 Shape = tuple[int, ...]
 
@@ -67,6 +81,8 @@ class CatalogShapes:
     mid : the workhorse shape on which value kinds, parameters, strides and modes vary.
     long_cancellation : (shape, k, layout): the cancellation case on a longer reduction.
     long : a shape with 2^20 elements per statistic (the standard tier's long reductions).
+    long_params : a shape with more than 65504 (float16's largest value) terms per dweight/dbias sum,
+        for the constant-gradient case; None: ``long``.
     """
 
     smoke: tuple[tuple[Shape, int], ...]
@@ -75,6 +91,7 @@ class CatalogShapes:
     mid: tuple[Shape, int]
     long_cancellation: tuple[Shape, int, str]
     long: tuple[Shape, int]
+    long_params: tuple[Shape, int] | None = None
 
     def for_tier(self, tier: str) -> tuple[tuple[Shape, int], ...]:
         if tier == "smoke":
@@ -103,6 +120,10 @@ class OpSpec:
     default_bias : the bias kind of its other cases ("none" where the libraries define no bias).
     long_running : the long cancellation case also updates running statistics.
     modes : (mode, running, words) kinds of call the report checks that some case ran.
+    range_value_kinds : the value kinds of its range cases (x of large magnitude).
+    dy_kinds : the upstream-gradient kinds of its long parameter-reduction cases, besides "normal".
+    running_value_kinds : the running-statistic kinds of its eval range cases, besides "near"
+        (read only where has_eval).
     """
 
     name: str
@@ -118,6 +139,9 @@ class OpSpec:
     default_bias: str = "random"
     long_running: bool = False
     modes: tuple[tuple[str, bool, str], ...] = ()
+    range_value_kinds: tuple[str, ...] = RANGE_VALUE_KINDS
+    dy_kinds: tuple[str, ...] = DY_KINDS[1:]
+    running_value_kinds: tuple[str, ...] = RUNNING_VALUE_KINDS[1:]
 
     @property
     def saved(self) -> tuple[str, ...]:

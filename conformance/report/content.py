@@ -390,6 +390,7 @@ def kernel_facts(doc: dict[str, Any]) -> list[tuple[str, str]]:
         extra = ""
         if p.get("output_accumulate"):
             extra = "; per output: " + ", ".join(f"{o} in {a}" for o, a in p["output_accumulate"].items())
+        extra += _precision_extras(p)
         facts.append((f"precision {dt}", f"storage {p.get('storage')}, params {p.get('params')}, "
                       f"accumulate {p.get('accumulate')}, summation model {p.get('summation')} "
                       f"(lambda {fmt(p.get('lam'))}){extra}"))
@@ -405,6 +406,22 @@ def kernel_facts(doc: dict[str, Any]) -> list[tuple[str, str]]:
     if k.get("notes"):
         facts.append(("notes", str(k["notes"])))
     return facts
+
+
+def _precision_extras(p: dict[str, Any]) -> str:
+    """The declaration's fields beyond formats and summation, where they are not the defaults."""
+    parts = []
+    if p.get("statistics") and p.get("statistics") != p.get("accumulate"):
+        parts.append(f"statistics rounded to {p['statistics']} before use")
+    if p.get("saved") and p.get("saved") != p.get("params"):
+        parts.append(f"saved statistics in {p['saved']}")
+    if p.get("subnormals") == "flush":
+        parts.append("subnormals flushed to zero")
+    if p.get("overflow") == "saturate":
+        parts.append("out-of-range results saturate")
+    if p.get("output_summation"):
+        parts.append("summation per output: " + ", ".join(f"{o} {m}" for o, m in p["output_summation"].items()))
+    return "".join("; " + x for x in parts)
 
 
 def environment_facts(doc: dict[str, Any], peers: dict[str, Any] | None = None) -> list[tuple[str, str]]:

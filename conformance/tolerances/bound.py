@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Bound", "override_bound", "json_number"]
+__all__ = ["Bound", "Accept", "override_bound", "json_number"]
 
 
 def json_number(v: Any) -> Any:
@@ -30,6 +30,24 @@ def _sample(a: np.ndarray) -> np.ndarray:
 
 
 @dataclass(frozen=True)
+class Accept:
+    """Elements where a correct kernel's value may differ from the oracle's by more than the bound.
+
+    mask : bool, broadcastable to the output's shape: where the alternative applies.
+    value : float64, broadcastable: the accepted value there (NaN accepts a NaN, +-inf that
+        infinity); None accepts any non-finite value.
+    must : the oracle's own value cannot be the answer there (it lies outside the output format's
+        range): only ``value`` is right, and any other value is a mismatch.
+    reason : what makes the alternative correct, in words (counted per reason in the results).
+    """
+
+    mask: np.ndarray
+    value: np.ndarray | None
+    reason: str
+    must: bool = False
+
+
+@dataclass(frozen=True)
 class Bound:
     """Allowed |kernel - oracle| for one output, elementwise.
 
@@ -38,6 +56,8 @@ class Bound:
     formula : the bound in symbols (docs/tolerances.md defines them).
     terms : the numbers in the formula at the worst-conditioned statistic.
     kind : "derived" (from the rounding-error model) or "override" (a fixed atol + rtol |expected|).
+    accept : elements where another value than the oracle's is a correct kernel's (Accept), judged
+        by the comparison before the bound (docs/tolerances.md, "Accepted differences").
     """
 
     output: str
@@ -45,6 +65,7 @@ class Bound:
     formula: str
     terms: dict[str, float] = field(default_factory=dict)
     kind: str = "derived"
+    accept: tuple[Accept, ...] = ()
 
     def summary(self) -> dict[str, Any]:
         """JSON-ready description: output, kind, formula, terms, max and median of the values.

@@ -9,8 +9,11 @@ length m; r, mu, v the float64 statistics, B_mu, dr = |r^ - r|, dbeta their erro
 eta_f = half the smallest subnormal of format f (rounding in the subnormal range).
 
     y        |w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x| + |mu| + |x-mu|) + |b| + 2|y|)
+             (training: covers the centred and the folded form alike)
+    y eval   |w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x-mu| + B_mu) + |b| + 2|y|) + u_cv |w| (r+dr) |x|
+             centred (Conventions.y_form); folded adds u_o 3 |w| (r+dr) (|x| + |mu|)
     dx       dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|)
-             + r dm1 + beta r |x-mu| dm2 + u_o (3 r (|g| + |m1|) + 3 beta r |x-mu| |m2| + 2 |dx|),
+             + beta r^2 B_mu^2 |m1| + r dm1 + beta r |x-mu| dm2 + u_o (3 r (|g| + |m1|) + 3 beta r |x-mu| |m2| + 2 |dx|),
              dm1 = (gamma_n + 2u_o) mean|g| + u_o |m1|,  dm2 = (gamma_n + 4u_o) mean|g xhat| + u_o |m2|
     dx eval  |g| dr + 2 u_o r |g|
     dweight  sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_o + 2u_a) sum_m |dy xhat|
@@ -19,7 +22,14 @@ eta_f = half the smallest subnormal of format f (rounding in the subnormal range
     running  |c_s| B_s + 3 u_o (|running| + |s|) + u_o |new|  for new = c_r running + c_s s
 
 and every output gets its final rounding: value (1 + u_f) + u_f |output| + eta_f, with f the
-storage format for y and dx, the params format for the others.
+storage format for y and dx, the saved format (Precision.saved) for saved statistics, the params
+format for the others. With Precision.subnormals = "flush", eta_f is f's smallest normal value
+(a result below it may be flushed to zero) and inputs below the smallest normal value are read
+as zero, an input error d = |input| that propagates like any other (_Context.flushed, stats.py).
+Statistics rounded before use (Precision.statistics) widen B_mu and dr (stats.StatModel.rounded);
+a per-output summation model (Precision.output_summation) replaces gamma for that output's sums.
+Where a result may lie outside its output format's range, or a NaN mean is a correct kernel's
+(a group holding +-Inf), the Bound carries accepted alternatives (bound.Accept, ranges.py).
 """
 
 from __future__ import annotations
@@ -32,7 +42,8 @@ import numpy as np
 from .. import dtypes, ops
 from ..cases.model import Case
 from ..kernel import Conventions, Precision
-from .bound import Bound
+from . import ranges
+from .bound import Accept, Bound
 from .grouping import Grouping, grouping
 from .stats import ELEM, StatModel, batch_stats, eta, fixed_stats
 from .summation import capped, gamma
@@ -49,7 +60,9 @@ def output_dtype(output: str, precision: Precision) -> str:
     if output not in OUTPUTS:
         raise ValueError(f"output is {output!r}, expected one of {', '.join(OUTPUTS)}")
     p = precision.resolved()
-    return p.storage if output in ("y", "dx") else p.params
+    if output in ("y", "dx"):
+        return p.storage
+    return p.saved if output in STAT_OUTPUTS else p.params
 
 
 _STATS_TXT = ("B_mu = (gamma_n + u_cv) mean|x| + 2 u_a |mu|; v^ in [v - B_v-, v + B_v+], "
@@ -74,9 +87,14 @@ class _Context:
         self.u_s = dtypes.unit_roundoff(self.p.storage)
         self.u_p = dtypes.unit_roundoff(self.p.params)
         self.u_a = dtypes.unit_roundoff(self.p.accumulate)
-        self.eta_s = eta(self.p.storage)
-        self.eta_p = eta(self.p.params)
-        self.eta_a = eta(self.p.accumulate)
+        self.flush = self.p.subnormals == "flush"
+        self.eta_s = self.floor(self.p.storage)
+        self.eta_p = self.floor(self.p.params)
+        self.eta_a = self.floor(self.p.accumulate)
+        self.u_st = dtypes.unit_roundoff(self.p.statistics)
+        self.eta_st = self.floor(self.p.statistics)
+        self.u_sv = dtypes.unit_roundoff(self.p.saved)
+        self.eta_sv = self.floor(self.p.saved)
         self.model = self.p.summation
         self.lam = float(self.p.lam)
         self.spec = ops.get(case.op)
@@ -88,7 +106,47 @@ class _Context:
         self.xv = self.grp.view(self._need("x", case.shape))
         self.w = self._param("weight")
         self.b = self._param("bias")
-        self._stats: dict[float, StatModel] = {}
+        self._stats: dict[tuple[float, str], StatModel] = {}
+        self._cache: dict[str, np.ndarray | float] = {}  # flushed inputs by name, and the range used
+        self.accepts: dict[str, tuple[Accept, ...]] = {}
+
+    def floor(self, fmt: str) -> float:
+        """The absolute error of one rounding into ``fmt`` near zero: half its smallest subnormal
+        (gradual underflow, IEEE 754-2019 §3.3), or its smallest normal value when subnormals are
+        flushed (a result below it may become zero)."""
+        return float(dtypes.finfo(fmt).smallest_normal) if self.flush else eta(fmt)
+
+    def flushed(self, name: str) -> np.ndarray | float:
+        """|input| where a kernel that flushes subnormals reads the input as zero (below the smallest
+        normal value of its own format or of the accumulation format), else 0; 0.0 when subnormals
+        are kept (the view's shape for x and dy, the parameters' for weight and bias)."""
+        if not self.flush:
+            return 0.0
+        if name not in self._cache:
+            fmt = self.p.storage if name in ("x", "dy") else self.p.params
+            thr = max(float(dtypes.finfo(fmt).smallest_normal), float(dtypes.finfo(self.p.accumulate).smallest_normal))
+            a = {"x": lambda: self.xv, "dy": self.dyv, "weight": lambda: self.w, "bias": lambda: self.b}[name]()
+            if a is None:
+                self._cache[name] = 0.0
+            else:
+                aa = np.abs(a)
+                self._cache[name] = np.where(np.isfinite(aa) & (aa < thr), aa, 0.0)
+        return self._cache[name]
+
+    def model_for(self, output: str) -> str:
+        return self.p.summation_for(output)
+
+    def range_used(self) -> float:
+        """max over statistics of max(sum |x|, sum (x - mu)^2) / the accumulation format's largest value
+        (ranges.py): above 1 the data is beyond what a correct kernel of this precision must handle."""
+        if "range" not in self._cache:
+            # From the statistics already computed: S_1 = n mean|x|, S_2 = n v (v the mean square for RMS).
+            st = self.stats()
+            with np.errstate(invalid="ignore", over="ignore"):
+                used = np.fmax(st.n * st.A, st.n * st.v) / float(dtypes.finfo(self.p.accumulate).max)
+            used = np.where(np.isfinite(st.v) & np.isfinite(st.A), used, np.nan)
+            self._cache["range"] = float(np.nanmax(used)) if np.isfinite(used).any() else 0.0
+        return float(self._cache["range"])
 
     # ------------------------------------------------------------- inputs
     def _need(self, name: str, shape: tuple[int, ...]) -> np.ndarray:
@@ -122,48 +180,71 @@ class _Context:
         return dtypes.unit_roundoff(self.p.accumulate_for(name))
 
     # ------------------------------------------------------------- statistics
-    def stats(self, u: float | None = None) -> StatModel:
+    def stats(self, u: float | None = None, model: str | None = None) -> StatModel:
+        """The statistics' model with sums in unit roundoff u under summation ``model``, rounded to the
+        statistics format where the kernel declares one (Precision.statistics)."""
         u = self.u_a if u is None else u
-        if u not in self._stats:
+        model = model or self.model
+        key = (u, model)
+        if key not in self._stats:
             if self.train:
                 u_cv = u if u > self.u_s else 0.0
-                eta_a = max(self.eta_a, _eta_for(u))
-                self._stats[u] = batch_stats(self.xv, self.grp, center=self.center, eps=self.eps,
-                                             placement=self.placement, u=u, model=self.model, lam=self.lam,
-                                             u_cv=u_cv, eta_a=eta_a)
+                eta_a = max(self.eta_a, self._floor_for(u))
+                fl = self.flushed("x")
+                st = batch_stats(self.xv, self.grp, center=self.center, eps=self.eps, placement=self.placement,
+                                 u=u, model=model, lam=self.lam, u_cv=u_cv, eta_a=eta_a,
+                                 flushed=None if np.isscalar(fl) else fl)
             else:
                 c = self.grp.param_shape
                 rm = self.grp.param_in(self._need("running_mean", c))
                 rv = self.grp.param_in(self._need("running_var", c))
-                self._stats[u] = fixed_stats(rm, rv, eps=self.eps, placement=self.placement, u=u)
-        return self._stats[u]
+                st = fixed_stats(rm, rv, eps=self.eps, placement=self.placement, u=u,
+                                 u_cv=u if u > self.u_p else 0.0)
+            if self.u_st > u:
+                st = st.rounded(self.u_st, self.eta_st)
+            self._stats[key] = st
+        return self._stats[key]
+
+    def _floor_for(self, u: float) -> float:
+        for name in dtypes.FORMATS:
+            if dtypes.unit_roundoff(name) == u:
+                return self.floor(name)
+        return 0.0
 
     def backward_stats(self) -> StatModel:
-        """The statistics a backward pass uses: its own, or the forward's saved ones in the params format."""
+        """The statistics a backward pass uses: its own, or the forward's saved ones in the saved format."""
         st = self.stats()
         saved = set(self.conv.saved) if self.train else set()
         if saved:
-            st = st.widened(self.u_p, self.eta_p, mean="mean" in saved, disp=bool(saved - {"mean"}))
+            st = st.widened(self.u_sv, self.eta_sv, mean="mean" in saved, disp=bool(saved - {"mean"}))
         return st
 
     def r_text(self) -> str:
         return "r = 1/sqrt(v + eps)" if self.placement == "inside" else "r = 1/(sqrt(v) + eps)"
 
-    def gamma_text(self, k: str = "n") -> str:
+    def gamma_text(self, k: str = "n", model: str | None = None) -> str:
         """The declared summation model's gamma for a sum of ``k`` terms, in words."""
-        model = {"probabilistic": f"exp(lam sqrt({k}) u + {k} u^2/(1-u)) - 1 (probabilistic, lam = {self.lam:g})",
+        model = model or self.model
+        words = {"probabilistic": f"exp(lam sqrt({k}) u + {k} u^2/(1-u)) - 1 (probabilistic, lam = {self.lam:g})",
                  "pairwise": f"j u/(1 - j u), j = ceil(log2 {k}) (pairwise)",
-                 "worst": f"{k} u/(1 - {k} u) (worst case)"}[self.model]
-        return f"gamma_{k} = min({k} u/(1 - {k} u), {model})"
+                 "worst": f"{k} u/(1 - {k} u) (worst case)"}[model]
+        return f"gamma_{k} = min({k} u/(1 - {k} u), {words})"
 
-    def stats_text(self, st: StatModel) -> str:
+    def stats_text(self, st: StatModel, model: str | None = None) -> str:
+        model = model or self.model
+        extra = ""
+        if self.u_st > st.u:
+            extra += (f"; statistics rounded to {self.p.statistics} before use: B_mu + u_st |mu|, v^ twice, "
+                      "r^ once more (u_st)")
+        if self.flush:
+            extra += "; subnormals flushed: inputs below the smallest normal value read as 0, eta_f = smallest normal"
         if not self.train:
-            return _STATS_EVAL.format(r=self.r_text(), e=ELEM)
+            return _STATS_EVAL.format(r=self.r_text(), e=ELEM) + extra
         if not self.center:
-            return _STATS_RMS.format(r=self.r_text(), e=ELEM) + "; " + self.gamma_text()
-        w = ("min(2 gamma_worst(n) |mu| mean|x-mu|, lam u_a |mu| sqrt(v))" if self.model == "probabilistic"
+            return _STATS_RMS.format(r=self.r_text(), e=ELEM) + "; " + self.gamma_text(model=model) + extra
+        w = ("min(2 gamma_worst(n) |mu| mean|x-mu|, lam u_a |mu| sqrt(v))" if model == "probabilistic"
              else "2 gamma_n |mu| mean|x-mu|")
-        return _STATS_TXT.format(w=w, r=self.r_text(), e=ELEM) + "; " + self.gamma_text()
+        return _STATS_TXT.format(w=w, r=self.r_text(), e=ELEM) + "; " + self.gamma_text(model=model) + extra
 
     # ------------------------------------------------------------- reporting
     def worst_group(self, st: StatModel) -> tuple[int, ...] | None:
@@ -200,15 +281,10 @@ class _Context:
                     "dr_over_r": float(st.dr[gi] / st.r[gi]),
                 })
         t["vacuous_groups"] = float(np.count_nonzero(st.vacuous & np.isfinite(st.v)))
+        if self.train:
+            t["range_used"] = self.range_used()
         t.update({k: float(v) for k, v in extra.items()})
         return t
-
-
-def _eta_for(u: float) -> float:
-    for name in dtypes.FORMATS:
-        if dtypes.unit_roundoff(name) == u:
-            return eta(name)
-    return 0.0
 
 
 def _finite_max(a: np.ndarray) -> float:
@@ -223,7 +299,8 @@ def _final(pre: np.ndarray, value: np.ndarray, u_f: float, eta_f: float) -> np.n
 
 # ----------------------------------------------------------------- forward
 def _y(ctx: _Context, expected: np.ndarray):
-    st = ctx.stats()
+    model = ctx.model_for("y")
+    st = ctx.stats(model=model)
     u_o = ctx.u_out("y")
     grp = ctx.grp
     y = np.abs(grp.view(expected))
@@ -233,15 +310,47 @@ def _y(ctx: _Context, expected: np.ndarray):
     r_up = st.r + dr
     with np.errstate(invalid="ignore", over="ignore"):
         d = np.abs(x - st.mu)
-        pre = (w * r_up * st.b_mu + w * d * dr
-               + u_o * (3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d) + b + 2.0 * y) + 4.0 * ctx.eta_a)
+        fl = (w * r_up * ctx.flushed("x") + r_up * d * ctx.flushed("weight") + ctx.flushed("bias")
+              if ctx.flush else 0.0)  # inputs read as zero: x moves by |x|, weight by |w|, bias by |b|
+        if ctx.train:
+            # The mean's own error B_mu >= 2 u_a |mu| + gamma_n mean|x| is of the size of the folded form's
+            # roundings, so training keeps one bound for both forms.
+            pre = (w * r_up * st.b_mu + w * d * dr
+                   + u_o * (3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d) + b + 2.0 * y) + 4.0 * ctx.eta_a) + fl
+            f_form, ratio = "", None
+        else:
+            common = w * r_up * st.b_mu + w * d * dr + u_o * (b + 2.0 * y) + 4.0 * ctx.eta_a + fl
+            u_cv = u_o if u_o > ctx.u_s else 0.0  # x converted to an accumulation format narrower than storage
+            centred = common + u_o * 3.0 * w * r_up * (d + st.b_mu) + u_cv * w * r_up * np.abs(x)
+            fold = (common + u_o * 3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d)
+                    + u_cv * w * r_up * np.abs(x))
+            fin = np.isfinite(fold) & np.isfinite(centred) & (centred > 0)
+            ratio = float(np.max(fold[fin] / centred[fin])) if fin.any() else 1.0
+            if ctx.conv.y_form == "folded":
+                pre = fold
+                f_form = (f" [folded form x scale + shift declared: its roundings of |x| scale and |mu| scale "
+                          f"allow up to {ratio:.3g} times the centred form's bound here; large where |mean| is "
+                          "large against |x - mean|]")
+            else:
+                pre = centred
+                f_form = (f" [centred form (x - mean) scale + b; a kernel that folds it into x scale + shift "
+                          f"declares y_form='folded' and may err {ratio:.3g} times more here]")
         vals = _final(pre, y, ctx.u_s, ctx.eta_s)
-    if ctx.center:
+    if not ctx.center:
+        f = "|w| |x| dr + u_o (3 |w| (r+dr) 2|x| + |b| + 2|y|) + final u_s |y|"
+    elif ctx.train:
         f = ("|w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x| + |mu| + |x-mu|) + |b| + 2|y|)"
              " + final u_s |y|")
+    elif ctx.conv.y_form == "folded":
+        f = ("|w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x| + |mu| + |x-mu|) + |b| + 2|y|)"
+             " + u_cv |w| (r+dr) |x| + final u_s |y|")
     else:
-        f = "|w| |x| dr + u_o (3 |w| (r+dr) 2|x| + |b| + 2|y|) + final u_s |y|"
-    return grp.unview(vals), f + "; " + ctx.stats_text(st), ctx.terms(st, u_o)
+        f = ("|w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x-mu| + B_mu) + |b| + 2|y|)"
+             " + u_cv |w| (r+dr) |x| + final u_s |y|")
+    if ctx.flush:
+        f += " + |w| (r+dr) |x flushed| + (r+dr) |x-mu| |w flushed| + |b flushed|"
+    extra = {} if ratio is None else {"folded_over_centred": ratio}
+    return grp.unview(vals), f + f_form + "; " + ctx.stats_text(st, model), ctx.terms(st, u_o, **extra)
 
 
 def _stat_output(name: str):
@@ -251,23 +360,26 @@ def _stat_output(name: str):
         if name == "mean" and not ctx.center:
             raise ValueError(f"output 'mean' is not defined for {ctx.case.op} (no centering)")
         u_o = ctx.u_out(name)
-        st = ctx.stats(u_o)
+        model = ctx.model_for(name)
+        st = ctx.stats(u_o, model)
         n = st.n
-        up, ep = ctx.u_p, ctx.eta_p
+        up, ep = ctx.u_sv, ctx.eta_sv  # saved statistics are returned in the saved format
+        u_f = "u_p" if ctx.p.saved == ctx.p.params else "u_sv"
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             if name == "mean":
                 vals = _final(st.b_mu, st.mu, up, ep)
-                f = "B_mu + final u_p |mean|"
+                f = f"B_mu + final {u_f} |mean|"
+                ctx.accepts[name] = _inf_group_mean(ctx, st, expected)
             elif name == "rstd":
                 vals = _final(st.dr, st.r, up, ep)
-                f = "dr + final u_p r"
+                f = f"dr + final {u_f} r"
             elif name == "var":
                 vals = _final(st.b_var, st.v, up, ep)
-                f = "max(B_v-, B_v+) + final u_p v"
+                f = f"max(B_v-, B_v+) + final {u_f} v"
             elif name == "var_unbiased":
                 c = n / (n - 1) if n > 1 else math.nan
                 vals = _final(c * st.b_var + 2.0 * u_o * c * st.v, c * st.v, up, ep)
-                f = "n/(n-1) (max(B_v-, B_v+) + 2 u_o v) + final u_p n v/(n-1)"
+                f = f"n/(n-1) (max(B_v-, B_v+) + 2 u_o v) + final {u_f} n v/(n-1)"
             else:  # std = sqrt(v + eps) or sqrt(v) + eps: 1/rstd
                 e = ELEM * u_o
                 v_lo = np.maximum(st.v - st.v_dn, 0.0)
@@ -276,16 +388,31 @@ def _stat_output(name: str):
                     s = np.sqrt(st.v + ctx.eps)
                     s_lo = np.sqrt((v_lo + ctx.eps) * (1 - u_o)) * (1 - e)
                     s_hi = np.sqrt((v_hi + ctx.eps) * (1 + u_o)) * (1 + e)
-                    f = "|sqrt(v^ + eps) - sqrt(v + eps)| over v^'s interval + final u_p std"
+                    f = f"|sqrt(v^ + eps) - sqrt(v + eps)| over v^'s interval + final {u_f} std"
                 else:
                     s = np.sqrt(st.v) + ctx.eps
                     s_lo = (np.sqrt(v_lo) * (1 - e) + ctx.eps) * (1 - u_o)
                     s_hi = (np.sqrt(v_hi) * (1 + e) + ctx.eps) * (1 + u_o)
-                    f = "|sqrt(v^) - sqrt(v)| + eps rounding over v^'s interval + final u_p std"
+                    f = f"|sqrt(v^) - sqrt(v)| + eps rounding over v^'s interval + final {u_f} std"
                 vals = _final(np.maximum(s_hi - s, s - s_lo), s, up, ep)
-        return ctx.grp.stat_out(vals), f + "; " + ctx.stats_text(st), ctx.terms(st, u_o)
+        if u_f == "u_sv":
+            f += f" (u_sv: the saved format {ctx.p.saved})"
+        return ctx.grp.stat_out(vals), f + "; " + ctx.stats_text(st, model), ctx.terms(st, u_o)
 
     return build
+
+
+_INF_GROUP = ("a group holding +-Inf: a kernel that merges partial results (Welford or Chan updates) gives "
+              "NaN (Inf - Inf) for its mean where two passes give +-Inf, and every normalized output of "
+              "the group is NaN either way")
+
+
+def _inf_group_mean(ctx: _Context, st: StatModel, expected: np.ndarray) -> tuple[Accept, ...]:
+    """NaN accepted for a mean that is +-Inf where the group's variance, so every y of the group, is NaN."""
+    e = np.asarray(expected, dtype=np.float64)
+    nan_v = ctx.grp.stat_out(np.broadcast_to(np.isnan(st.v), st.v.shape))
+    mask = np.isinf(e) & nan_v
+    return (Accept(mask, np.full(e.shape, np.nan), _INF_GROUP),) if mask.any() else ()
 
 
 def _running(name: str):
@@ -295,7 +422,8 @@ def _running(name: str):
             raise ValueError(f"output {name!r} needs a training-mode {' or '.join(ops.with_eval())} case, "
                              f"received {case.id}")
         u_o = ctx.u_out(name)
-        st = ctx.stats(u_o)
+        model = ctx.model_for(name)
+        st = ctx.stats(u_o, model)
         n = st.n
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             if name == "running_mean":
@@ -312,7 +440,7 @@ def _running(name: str):
                 nb = st.v.shape[0]
                 s_avg = np.mean(s, axis=0, keepdims=True)
                 bs = (np.mean(bs, axis=0, keepdims=True)
-                      + capped(gamma(nb, u_o, ctx.model, ctx.lam)) * np.mean(np.abs(s), axis=0, keepdims=True)
+                      + capped(gamma(nb, u_o, model, ctx.lam)) * np.mean(np.abs(s), axis=0, keepdims=True)
                       + u_o * np.abs(s_avg))
                 s = s_avg
             run = grp.param_in(ctx._need(name, grp.param_shape))
@@ -327,12 +455,21 @@ def _running(name: str):
                 f_c = "c_s = momentum" if conv.momentum_convention == "new" else "c_s = 1 - momentum"
             pre = abs(c_s) * bs + 3.0 * u_o * (np.abs(run) + np.abs(s)) + u_o * np.abs(new)
             vals = _final(pre, new, ctx.u_p, ctx.eta_p)
+            if name == "running_mean":
+                # The running mean of a channel whose batch mean is +-Inf: NaN from a merging kernel.
+                nan_v = np.isnan(st.v)
+                if ctx.spec.running_from_samples:
+                    nan_v = np.any(nan_v, axis=0, keepdims=True)
+                mask = grp.param_out(np.isinf(new) & np.broadcast_to(nan_v, np.broadcast_shapes(nan_v.shape,
+                                                                                             np.shape(new))))
+                if mask.any():
+                    ctx.accepts[name] = (Accept(mask, np.full(mask.shape, np.nan), _INF_GROUP),)
         what = "B_mu" if name == "running_mean" else (
             "n/(n-1) (max(B_v-, B_v+) + 2 u_o v)" if conv.running_var_estimator == "unbiased" else "max(B_v-, B_v+)")
         if ctx.spec.running_from_samples:
             what = f"mean over N of {what} + gamma_N mean|s| + u_o |s|"
         f = (f"|c_s| B_s + 3 u_o (|running| + |s|) + u_o |new| + final u_p |new|, B_s = {what}, {f_c}; "
-             + ctx.stats_text(st))
+             + ctx.stats_text(st, model))
         return grp.param_out(vals), f, ctx.terms(st, u_o, momentum_weight=c_s)
 
     return build
@@ -348,13 +485,17 @@ def _dx(ctx: _Context, expected: np.ndarray):
     g = dy if ctx.w is None else dy * ctx.w
     dr = st.dr
     r_up = st.r + dr
+    model = ctx.model_for("dx")
+    # Inputs a flushing kernel reads as zero: g = dy w moves by |w| d_dy + |dy| d_w (0 when kept).
+    dg = ctx.w_abs() * ctx.flushed("dy") + np.abs(dy) * ctx.flushed("weight") if ctx.flush else 0.0
+    fl_txt = " + flushed inputs' terms" if ctx.flush else ""
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         if not ctx.train:
-            pre = np.abs(g) * dr + 2.0 * u_o * r_up * np.abs(g) + 2.0 * ctx.eta_a
+            pre = np.abs(g) * dr + 2.0 * u_o * r_up * np.abs(g) + 2.0 * ctx.eta_a + r_up * dg
             vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
-            f = "|g| dr + 2 u_o (r+dr) |g| + final u_s |dx|, g = dy w; " + ctx.stats_text(st)
+            f = "|g| dr + 2 u_o (r+dr) |g| + final u_s |dx|, g = dy w" + fl_txt + "; " + ctx.stats_text(st)
             return grp.unview(vals), f, ctx.terms(st, u_o)
-        gam = capped(gamma(grp.n, u_o, ctx.model, ctx.lam))
+        gam = capped(gamma(grp.n, u_o, model, ctx.lam))
         xc = ctx.xv - st.mu
         d = np.abs(xc)
         xhat = xc * st.r
@@ -370,12 +511,27 @@ def _dx(ctx: _Context, expected: np.ndarray):
         pre = dr * (np.abs(gc) + 2.0 * (beta_up / st.r) * xm2) + st.dbeta * xm2 + beta_up * r_up * d * dm2
         if ctx.center:
             pre = pre + beta_up * r_up * st.b_mu * (np.abs(m2) + np.abs(xhat) * np.abs(m1)) + r_up * dm1
+            # Second order in the mean's error d: xhat moves by r d and m2 by -r d m1, so xhat m2 moves by
+            # r d m2 - r d xhat m1 - r^2 d^2 m1; the last term matters where r B_mu is not small (data of
+            # kappa ~ 64 whose saved mean is rounded to bfloat16: r B_mu ~ 0.3).
+            # (r B_mu clamped at 1e100 inside the square: beyond it gamma is GAMMA_CAP-sized, "no bound",
+            # and the first-order terms already carry that; the clamp keeps the square finite.)
+            rb = np.minimum(r_up * st.b_mu, 1e100)
+            pre = pre + beta_up * rb * rb * np.abs(m1)
         pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
                            + 2.0 * dx) + 6.0 * ctx.eta_a
+        if ctx.flush:
+            # x read as zero moves xhat by r |x| (and m2 with it); g moves by dg (and m1, m2 with it).
+            fx = ctx.flushed("x")
+            dm2_f = r_up * grp.gmean(np.abs(g) * fx) + grp.gmean(dg * np.abs(xhat))
+            pre = pre + beta_up * r_up * fx * np.abs(m2) + beta_up * np.abs(xhat) * dm2_f + r_up * dg
+            if ctx.center:
+                pre = pre + r_up * grp.gmean(dg)
         vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
     beta = "beta = r" if ctx.placement == "inside" else "beta = 1/sqrt(v)"
     if ctx.center:
-        f = ("dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|) + r dm1"
+        f = ("dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|)"
+             " + beta r^2 B_mu^2 |m1| + r dm1"
              " + beta r |x-mu| dm2 + u_o (3 r (|g| + |m1|) + 3 beta r |x-mu| |m2| + 2|dx|) + final u_s |dx|,"
              " g = dy w, gc = g - m1, m1 = mean(g), m2 = mean(g xhat), dm1 = (gamma_n + 2u_o) mean|g| + u_o |m1|,"
              f" dm2 = (gamma_n + 4u_o) mean|g xhat| + u_o |m2|, {beta}")
@@ -383,12 +539,17 @@ def _dx(ctx: _Context, expected: np.ndarray):
         f = ("dr (|g| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r |x| dm2 + u_o (3 r |g| + 3 beta r |x| |m2|"
              " + 2|dx|) + final u_s |dx|, g = dy w, m2 = mean(g xhat), dm2 = (gamma_n + 4u_o) mean|g xhat|"
              f" + u_o |m2|, {beta}")
-    saved = " (statistics saved in the params format: + u_p)" if (ctx.train and ctx.conv.saved) else ""
+    saved = ""
+    if ctx.train and ctx.conv.saved:
+        saved = (" (statistics saved in the params format: + u_p)" if ctx.p.saved == ctx.p.params
+                 else f" (statistics saved in {ctx.p.saved}: + u_sv)")
+    f += fl_txt
     wg = ctx.worst_group(st)
     extra = {}
     if wg is not None:
         extra = {"mean_abs_g": float(np.broadcast_to(ag, st.v.shape)[wg]),
                  "mean_abs_g_xhat": float(np.broadcast_to(agx, st.v.shape)[wg])}
+    f += "; " + ctx.gamma_text(model=model) if model != ctx.model else ""
     return grp.unview(vals), f + saved + "; " + ctx.stats_text(st), ctx.terms(st, u_o, **extra)
 
 
@@ -397,7 +558,8 @@ def _dweight(ctx: _Context, expected: np.ndarray):
     st = ctx.backward_stats() if ctx.train else ctx.stats()
     u_w = ctx.u_out("dweight")
     m = int(ctx.case.param_length)
-    gam = capped(gamma(m, u_w, ctx.model, ctx.lam))
+    model = ctx.model_for("dweight")
+    gam = capped(gamma(m, u_w, model, ctx.lam))
     dw = np.abs(grp.param_in(np.asarray(expected)))
     dy = ctx.dyv()
     # A kernel's statistics errors are one number per group, so to first order they move dweight by
@@ -415,11 +577,19 @@ def _dweight(ctx: _Context, expected: np.ndarray):
             if outer else per
         sxh = grp.psum(np.abs(dy * xc) * st.r)
         pre = per + (gam + u_w + 2.0 * ctx.u_a) * sxh + u_w * dw + m * ctx.eta_a
+        if ctx.flush:  # dy and x read as zero where subnormal: each term dy xhat moves by d_dy |xhat| + |dy| r d_x
+            pre = pre + grp.psum(ctx.flushed("dy") * np.abs(xc) * (st.r + st.dr)
+                                 + np.abs(dy) * (st.r + st.dr) * ctx.flushed("x"))
         vals = _final(pre, dw, ctx.u_p, ctx.eta_p)
+    # A kernel may sum dy (x - mu) before scaling by r: whichever sum reaches beyond its declared format.
+    reach = np.maximum(sxh, grp.psum(np.abs(dy * xc)))
+    ctx.accepts["dweight"] = ranges.sum_overflow_accepts(grp.param_out(reach), ctx.p.accumulate_for("dweight"))
+
     f = ("sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_w + 2u_a) sum_m |dy xhat|"
          " + u_w |dweight| + final u_p |dweight|, sum_gm over the elements of group g in the parameter's sum,"
-         " u_w = accumulation of dweight; " + ctx.gamma_text("m") + "; " + ctx.stats_text(st))
-    return grp.param_out(vals), f, ctx.terms(st, u_w, m=float(m), gamma_m=gamma(m, u_w, ctx.model, ctx.lam),
+         " u_w = accumulation of dweight" + (" + flushed inputs' terms" if ctx.flush else "") + "; "
+         + ctx.gamma_text("m", model) + "; " + ctx.stats_text(st))
+    return grp.param_out(vals), f, ctx.terms(st, u_w, m=float(m), gamma_m=gamma(m, u_w, model, ctx.lam),
                                              sum_abs_dy_xhat=_finite_max(sxh))
 
 
@@ -428,15 +598,19 @@ def _dbias(ctx: _Context, expected: np.ndarray):
     st = ctx.stats()
     u_b = ctx.u_out("dbias")
     m = int(ctx.case.param_length)
-    gam = capped(gamma(m, u_b, ctx.model, ctx.lam))
+    model = ctx.model_for("dbias")
+    gam = capped(gamma(m, u_b, model, ctx.lam))
     db = np.abs(grp.param_in(np.asarray(expected)))
     with np.errstate(invalid="ignore", over="ignore"):
         s = grp.psum(np.abs(ctx.dyv()))
         pre = gam * s + u_b * db
+        if ctx.flush:
+            pre = pre + grp.psum(ctx.flushed("dy"))
         vals = _final(pre, db, ctx.u_p, ctx.eta_p)
-    f = ("gamma_m sum_m |dy| + u_b |dbias| + final u_p |dbias|, u_b = accumulation of dbias; "
-         + ctx.gamma_text("m"))
-    return grp.param_out(vals), f, ctx.terms(st, u_b, m=float(m), gamma_m=gamma(m, u_b, ctx.model, ctx.lam),
+    ctx.accepts["dbias"] = ranges.sum_overflow_accepts(grp.param_out(s), ctx.p.accumulate_for("dbias"))
+    f = ("gamma_m sum_m |dy| + u_b |dbias| + final u_p |dbias|, u_b = accumulation of dbias"
+         + (" + sum of flushed |dy|" if ctx.flush else "") + "; " + ctx.gamma_text("m", model))
+    return grp.param_out(vals), f, ctx.terms(st, u_b, m=float(m), gamma_m=gamma(m, u_b, model, ctx.lam),
                                              sum_abs_dy=_finite_max(s))
 
 
@@ -488,5 +662,10 @@ def derive_bounds(case: Case, precision: Precision, conventions: Conventions,
         terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
         scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
         terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
-        out[name] = Bound(output=name, values=np.ascontiguousarray(vals), formula=formula, terms=terms)
+        accept = ctx.accepts.get(name, ()) + ranges.overflow_accepts(e, vals, output_dtype(name, ctx.p),
+                                                                     ctx.p.overflow)
+        if accept:
+            terms["accept_elements"] = float(sum(int(np.count_nonzero(a.mask)) for a in accept))
+        out[name] = Bound(output=name, values=np.ascontiguousarray(vals), formula=formula, terms=terms,
+                          accept=accept)
     return out

@@ -6,9 +6,10 @@ the declared model's gamma_n (summation.py). For a group of n elements with
 float64 mean mu, biased variance v (the mean square for RMS norm) and
 A = mean|x|, D = mean|x - mu|:
 
-    mean       |mu^ - mu| <= B_mu = (gamma_n + u_cv) A + 2 u |mu|
+    mean       |mu^ - mu| <= B_mu = (gamma_n + u_cv) A + 2 u |mu| (+ eta when u_cv > 0)
                (sum of n terms, Higham 2002 §4.2; the division by n or product with fl(1/n);
-               u_cv = u when the accumulation format is narrower than the storage format)
+               u_cv = u when the accumulation format is narrower than the storage format, whose
+               conversion of x may also underflow: eta absolute, IEEE 754-2019 §7.5)
     variance   v^ in [v - B_v-, v + B_v+],
                B_v- = (gamma_n + 4 u) v + W + 2 eta
                B_v+ = (gamma_n + 4 u)(v + B_mu^2) + B_mu^2 + W + 2 eta
@@ -24,6 +25,12 @@ A = mean|x|, D = mean|x - mu|:
     rstd       r^ in [r_lo, r_hi] from v^'s interval through r = 1/sqrt(v + eps) ("inside") or
                1/(sqrt(v) + eps) ("outside"), with (1 +- u) on the addition of eps and
                (1 +- E u) on each square root, reciprocal square root or reciprocal, E = ELEM.
+    rounded    statistics rounded to a format of unit roundoff u_st before use (Precision.statistics):
+               B_mu + u_st |mu| + eta_st; the variance rounded twice (the sum of squares and the
+               quotient), 2 u_st relative + 2 eta_st; r^ once more, (1 +- u_st) +- eta_st.
+    flushed    subnormal inputs read as zero (Precision.subnormals = "flush"): x_i becomes x_i - d_i with
+               d_i = x_i where |x_i| is below the smallest normal value, so B_mu + mean|d| and the
+               variance moves by at most 2 mean(|x - mu| |d|) + mean(d^2) (mean(d^2) for RMS).
 
 A one-pass E[x^2] - E[x]^2 kernel has error ~ gamma_n mean(x^2) = gamma_n kappa^2 v with
 kappa^2 = 1 + mu^2/v: kappa times the W term and 1/(gamma_n) times the B_mu^2 term, which is what
@@ -98,6 +105,27 @@ class StatModel:
             return np.ones_like(self.v)
         with np.errstate(divide="ignore", invalid="ignore"):
             return np.sqrt(1.0 + np.square(self.mu) / self.v)
+
+    def rounded(self, u_st: float, eta_st: float) -> "StatModel":
+        """The statistics as a kernel uses them after rounding them to a format of unit roundoff u_st
+        (Precision.statistics): the mean once, the variance twice (sum of squares and quotient), rstd
+        once more; eta_st is that format's absolute rounding floor (stats.eta, or its smallest normal
+        value when subnormals are flushed)."""
+        with np.errstate(invalid="ignore", over="ignore"):
+            b_mu = self.b_mu + u_st * np.abs(self.mu) + eta_st if self.center else self.b_mu
+            inf_v = np.isinf(self.v)
+            v_dn = np.where(inf_v, 0.0, self.v_dn + 2.0 * u_st * self.v + 2.0 * eta_st)
+            v_up = np.where(inf_v, 0.0, self.v_up + 2.0 * u_st * (self.v + self.v_up) + 2.0 * eta_st)
+        vfloor = _tiny(self.u)
+        r_lo, r_hi, vac = r_interval(self.v - v_dn, self.v + v_up, self.eps, self.placement, self.u, vfloor)
+        r_lo, r_hi = np.maximum(r_lo * (1.0 - u_st) - eta_st, 0.0), r_hi * (1.0 + u_st) + eta_st
+        if self.placement == "outside":
+            _, b_lo, b_hi = beta_interval(self.v, self.v - v_dn, self.v + v_up, self.u, vfloor)
+            b_lo, b_hi = np.maximum(b_lo * (1.0 - u_st) - eta_st, 0.0), b_hi * (1.0 + u_st) + eta_st
+        else:
+            b_lo, b_hi = r_lo, r_hi
+        return _replace(self, b_mu=b_mu, v_dn=v_dn, v_up=v_up, r_lo=r_lo, r_hi=r_hi, beta_lo=b_lo, beta_hi=b_hi,
+                        vacuous=vac)
 
     def widened(self, u_p: float, eta_p: float, mean: bool, disp: bool) -> "StatModel":
         """The statistics as a backward pass receives them saved in the params format: one more
@@ -197,8 +225,11 @@ def _finish(center, n, u, gam, mu, v, A, b_mu, v_dn, v_up, w, eps, placement) ->
 
 
 def batch_stats(xv: np.ndarray, grp: Grouping, *, center: bool, eps: float, placement: str, u: float,
-                model: str, lam: float, u_cv: float, eta_a: float) -> StatModel:
-    """Statistics of the data itself (training mode) and the kernel's error model for them."""
+                model: str, lam: float, u_cv: float, eta_a: float, flushed: np.ndarray | None = None) -> StatModel:
+    """Statistics of the data itself (training mode) and the kernel's error model for them.
+
+    ``flushed``: |x_i| where a kernel that flushes subnormals reads x_i as zero, else 0 (None: none).
+    """
     n = grp.n
     gam_raw = gamma(n, u, model, lam)
     gam = capped(gam_raw)
@@ -211,21 +242,28 @@ def batch_stats(xv: np.ndarray, grp: Grouping, *, center: bool, eps: float, plac
             v = np.maximum(grp.gmean(np.square(dev)), 0.0)
             dbar = grp.gmean(np.abs(dev))
             b_mu = (gam + u_cv) * A + 2.0 * u * np.abs(mu)
+            if u_cv:  # converting x to a narrower accumulation format may underflow: eta_a absolute
+                b_mu = b_mu + eta_a
             w_det = 2.0 * capped(worst_gamma(n, u)) * np.abs(mu) * dbar
             if model == "probabilistic":
                 w = np.minimum(w_det, lam * u * np.abs(mu) * np.sqrt(v))
             else:
                 w = 2.0 * gam * np.abs(mu) * dbar
             rel = gam + 4.0 * u
-            v_dn = rel * v + w + 2.0 * eta_a
+            fl_v = 0.0
+            if flushed is not None:
+                b_mu = b_mu + grp.gmean(flushed)
+                fl_v = 2.0 * grp.gmean(np.abs(dev) * flushed) + grp.gmean(np.square(flushed))
+            v_dn = rel * v + w + 2.0 * eta_a + fl_v
             b2 = np.square(b_mu)
-            v_up = rel * (v + b2) + b2 + w + 2.0 * eta_a
+            v_up = rel * (v + b2) + b2 + w + 2.0 * eta_a + fl_v
         else:
             mu = np.zeros_like(A)
             v = grp.gmean(np.square(xv))
             b_mu = np.zeros_like(A)
             w = np.zeros_like(A)
-            v_dn = v_up = (gam + 3.0 * u + 2.0 * u_cv) * v + 2.0 * eta_a
+            fl_v = 0.0 if flushed is None else grp.gmean(np.square(flushed))
+            v_dn = v_up = (gam + 3.0 * u + 2.0 * u_cv) * v + 2.0 * eta_a + fl_v
     # An infinite variance (a row holding +-Inf) is computed as +Inf by any IEEE kernel: r = 0 exactly.
     inf_v = np.isinf(v)
     if inf_v.any():
@@ -233,9 +271,13 @@ def batch_stats(xv: np.ndarray, grp: Grouping, *, center: bool, eps: float, plac
     return _finish(center, n, u, gam_raw, mu, v, A, b_mu, v_dn, v_up, w, eps, placement)
 
 
-def fixed_stats(mean: np.ndarray, var: np.ndarray, *, eps: float, placement: str, u: float) -> StatModel:
-    """Given statistics (running statistics in eval mode): exact inputs, only rstd's own rounding."""
+def fixed_stats(mean: np.ndarray, var: np.ndarray, *, eps: float, placement: str, u: float,
+                u_cv: float = 0.0) -> StatModel:
+    """Given statistics (running statistics in eval mode): exact inputs, only rstd's own rounding, and
+    u_cv relative where they are converted to an accumulation format narrower than theirs."""
     mu = np.asarray(mean, dtype=np.float64)
     v = np.asarray(var, dtype=np.float64)
     z = np.zeros_like(v)
-    return _finish(True, 1, u, 0.0, mu, v, np.abs(mu), z, z, z, z, eps, placement)
+    with np.errstate(invalid="ignore", over="ignore"):
+        b_mu, dv = u_cv * np.abs(mu), u_cv * np.abs(v)
+    return _finish(True, 1, u, 0.0, mu, v, np.abs(mu), b_mu, dv, dv, z, eps, placement)
