@@ -493,7 +493,8 @@ def batch_norm(provider: str = DEFAULT_PROVIDER, threads: Any = 0, params: str =
         name=f"onnxruntime {rt.provider} batch_norm{'' if params == 'storage' else ' (float32 params)'}",
         op="batch_norm", forward=forward, forward_eval=forward_eval,
         outputs=("y", "running_mean", "running_var"), dtypes=dts,
-        conventions=Conventions(momentum_convention="old", running_var_estimator="biased", running="return"),
+        conventions=Conventions(momentum_convention="old", running_var_estimator="biased", running="return",
+                                y_form="folded"),
         precision={dt: rt.precision(dt, pdt(dt)) for dt in dts}, momentum_none=False, device=rt.provider,
         notes=rt.notes("BatchNormalization-15(X, scale, B, input_mean, input_var), training_mode=1 -> Y, "
                        "running_mean, running_var (forward), training_mode=0 (forward_eval); momentum is the "

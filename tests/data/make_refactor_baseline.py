@@ -2,7 +2,7 @@
 
 The stored record was produced by commit add45d7, the main branch before the op descriptions
 moved into conformance/ops/ (issue 12), and regenerated for the range and declaration cases and
-bounds (issue 8; tests/test_refactor_baseline.py says what changed). Re-run it only when a change
+bounds and for the oracle's exact paths (issue 8; tests/test_refactor_baseline.py says what changed). Re-run it only when a change
 is meant to alter the catalog, the inputs, the bounds or the verdicts, and say so in that commit:
 
     PYTHONPATH=. python tests/data/make_refactor_baseline.py [OP ...]
