@@ -23,9 +23,9 @@ from . import dtypes as _dtypes
 from .cases import TIERS, catalog
 from .destinations import DestinationError, file_target
 from .kernel import OPS, Kernel, KernelError, load_kernel
-from .options import DEFAULTS, number_type, shard_type, tolerance_type
+from .options import DEFAULTS, OUTPUT_NAMES, number_type, shard_type, tolerance_type
 
-EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 3
+EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_INCONCLUSIVE = 0, 1, 2, 3, 4
 
 #: Modules that extend the command line. Each may define, called in this order by `refnorm check`:
 #:   add_check_arguments(parser)       options of `refnorm check`; run options that a profile may fill
@@ -95,6 +95,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--tolerance", action="append", type=tolerance_type, default=[], metavar="OUTPUT=ATOL,RTOL",
                    help="replace the derived bound of one output by atol + rtol*|oracle| (repeatable; ATOL, RTOL "
                         "finite, >= 0 and at most 1e100)")
+    c.add_argument("--accept-inconclusive", action="append", default=[], metavar="OUTPUT", choices=OUTPUT_NAMES,
+                   help="accept passes of this output under a bound that is not informative (repeatable; "
+                        "recorded in the results and the report); without it such a run is INCONCLUSIVE, exit 4")
     c.add_argument("--quiet", action="store_true", help="no progress output")
     c.set_defaults(func=cmd_check)
     for ext in _extensions():
@@ -151,7 +154,8 @@ def run_options(args: argparse.Namespace, kernel: Kernel, argv: Sequence[str]):
     return RunOptions(tier=args.tier, dtypes=tuple(dict.fromkeys(args.dtype)) if args.dtype else None,
                       case_ids=tuple(dict.fromkeys(args.case)), seed=args.seed, workers=args.workers,
                       timeout=args.timeout, overrides=dict(args.tolerance), command="refnorm " + shlex.join(argv),
-                      shard=getattr(args, "shard", None), shard_durations=getattr(args, "_shard_durations", None))
+                      shard=getattr(args, "shard", None), shard_durations=getattr(args, "_shard_durations", None),
+                      accept_inconclusive=tuple(dict.fromkeys(getattr(args, "accept_inconclusive", None) or ())))
 
 
 def _prepare(args: argparse.Namespace) -> None:
@@ -242,7 +246,7 @@ def finish(args: argparse.Namespace, doc: dict[str, Any], exts) -> int:
         return EXIT_INTERRUPTED
     if unwritten:
         return EXIT_USAGE
-    code = EXIT_OK if doc["verdict"] == "conformant" else EXIT_FAIL
+    code = {"conformant": EXIT_OK, "inconclusive": EXIT_INCONCLUSIVE}.get(doc["verdict"], EXIT_FAIL)
     if doc["verdict"] == "no cases run" and (doc.get("run") or {}).get("shard"):
         code = EXIT_OK  # a shard may hold only skipped cases, or none: the merged run says whether any was checked
     for ext in exts:

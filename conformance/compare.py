@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from . import dtypes
+from .evidence import uninformative
 from .tolerances.bound import Accept, Bound, json_number
 
 __all__ = ["OutputResult", "compare_output", "unread_output", "ulp_histogram"]
@@ -49,6 +50,10 @@ class OutputResult:
     passed: bool = False
     message: str = ""
     accepted: dict[str, int] = field(default_factory=dict)
+    inconclusive: str = ""
+    class_only: str = ""
+    invariant: str = ""
+    accepted_inconclusive: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: tuples as lists, non-finite floats as "inf"/"-inf"/"nan"."""
@@ -249,6 +254,10 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
                        worst_expected=w_exp, worst_bound=w_b, nan_mismatch=n_nan,
                        inf_mismatch=n_inf, ulp_hist=ulp_histogram(ulps),
                        bound=bound.summary(), passed=k == 0, message="", accepted=accepted)
+    if res.passed and bound.kind == "derived":
+        res.inconclusive = uninformative(exp, b, float(bound.terms.get("reference_scale", 0.0)),
+                                         int(bound.terms.get("nonfinite_bound_elements", 0)),
+                                         max(float(dtypes.finfo(dtype).tiny), float(np.finfo(np.float32).tiny)))
     res.message = _message(res, bound)
     return res
 
@@ -258,7 +267,7 @@ def _message(r: OutputResult, bound: Bound) -> str:
     acc = "".join(f"; {k} element(s) differ from the oracle's value, accepted: {why}" for why, k in r.accepted.items())
     if r.passed:
         return (f"{head}: all {r.n} elements within the {bound.kind} bound; budget used {_fmt(r.budget_used)}, "
-                f"max ULP {r.max_ulp}{acc}")
+                f"max ULP {r.max_ulp}{acc}" + (f"; inconclusive: {r.inconclusive}" if r.inconclusive else ""))
     pct = 100.0 * r.mismatched / r.n if r.n else 0.0
     lines = [
         f"Not within the {bound.kind} bound: {head}",

@@ -217,12 +217,14 @@ class CaseItem(pytest.Item):
 
         state = self.config.stash[_STATE]
         plan = state.plans[self.index]
-        from conformance.results import CaseResult
+        from conformance.results import CaseResult, accept_inconclusive
         from conformance.run import skip_reason
 
         why = skip_reason(plan.kernel, self.case)  # as the runner does: no worker for a case the kernel excludes
         res = (CaseResult(id=self.case.id, case=self.case.as_dict(), status="skipped", message=why) if why
-               else state.pool(self.index).run_one(self.case)).to_dict()
+               else state.pool(self.index).run_one(self.case))
+        # an inconclusive pass fails the item (it is not evidence) unless the profile accepts its outputs
+        res = accept_inconclusive([res], getattr(plan, "accept_inconclusive", ()))[0].to_dict()
         regress_case(res, state.baselines.get(self.index, {}).get(self.case.id), plan.growth, plan.growth_floor)
         use = judge_case(res, plan.kernel.name, plan.waivers, state.today)
         outcome, msg = gate_outcome(res)

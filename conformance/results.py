@@ -18,7 +18,7 @@ from typing import Any, Iterable
 
 SCHEMA = "refnorm.results"
 SCHEMA_VERSION = 1
-STATUSES = ("passed", "failed", "crashed", "timed_out", "error", "skipped")
+STATUSES = ("passed", "inconclusive", "failed", "crashed", "timed_out", "error", "skipped")
 BAD = ("failed", "crashed", "timed_out", "error")
 #: The longest case message kept, in characters; a longer one keeps its start and its end and says how
 #: much was cut between them (a kernel's exception text can be megabytes).
@@ -108,7 +108,7 @@ def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
     def row(op: str, dt: str, out: str) -> dict[str, Any]:
         key = (op, dt, out)
         if key not in rows:
-            rows[key] = {"op": op, "dtype": dt, "output": out, "cases": 0, "passed": 0, "failed": 0,
+            rows[key] = {"op": op, "dtype": dt, "output": out, "cases": 0, "passed": 0, "inconclusive": 0, "failed": 0,
                          "crashed": 0, "worst_budget": 0.0, "worst_case": None,
                          "max_abs": 0.0, "max_rel": 0.0, "max_ulp": 0}
         return rows[key]
@@ -126,10 +126,12 @@ def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
         for o in c.outputs:
             r = row(op, dt, o["name"])
             r["cases"] += 1
-            if o["passed"]:
-                r["passed"] += 1
-            else:
+            if not o["passed"]:
                 r["failed"] += 1
+            elif o.get("inconclusive") and not o.get("accepted_inconclusive"):
+                r["inconclusive"] += 1
+            else:
+                r["passed"] += 1
             b = as_float(o.get("budget_used", 0.0))
             if b > r["worst_budget"] or r["worst_case"] is None:
                 r["worst_budget"], r["worst_case"] = b, c.id
@@ -149,13 +151,38 @@ def counts(cases: Iterable[CaseResult]) -> dict[str, int]:
 
 
 def verdict(cases: list[CaseResult], complete: bool) -> str:
+    """incomplete, not conformant (a failure), inconclusive (a pass that is not evidence, not accepted:
+    conformance.evidence), no cases run, or conformant."""
     if not complete:
         return "incomplete"
     if any(c.status in BAD for c in cases):
         return "not conformant"
+    if any(c.status == "inconclusive" for c in cases):
+        return "inconclusive"
     if not any(c.status == "passed" for c in cases):
         return "no cases run"
     return "conformant"
+
+
+def accept_inconclusive(cases: list[CaseResult], names: Iterable[str]) -> list[CaseResult]:
+    """The cases with the inconclusive outputs named in ``names`` accepted by the user (recorded per
+    output as accepted_inconclusive): a case whose every inconclusive output is accepted is passed."""
+    names = set(names)
+    if not names:
+        return cases
+    out = []
+    for c in cases:
+        if c.status == "inconclusive":
+            outs = [dict(o) for o in c.outputs]
+            for o in outs:
+                if o.get("inconclusive") and o["name"] in names:
+                    o["accepted_inconclusive"] = True
+            if all(o.get("accepted_inconclusive") for o in outs if o.get("inconclusive")):
+                c = CaseResult(**{**asdict(c), "outputs": outs, "status": "passed"})
+            else:
+                c = CaseResult(**{**asdict(c), "outputs": outs})
+        out.append(c)
+    return out
 
 
 def environment() -> dict[str, Any]:
@@ -214,6 +241,7 @@ def build_document(kernel_decl: dict[str, Any], run: dict[str, Any], cases: list
     With ``selected`` (the case ids the run chose), the document records its ``coverage``, and
     results that do not cover each selected case exactly once make it incomplete: never conformant.
     """
+    cases = accept_inconclusive(cases, (run or {}).get("accept_inconclusive") or ())
     cov = coverage(cases, selected) if selected is not None else None
     if cov and (cov["missing"] or cov["duplicated"] or cov["unexpected"]):
         complete = False

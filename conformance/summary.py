@@ -52,14 +52,45 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     itself (so that a one-line view keeps them) and then one per line with the reason; the caution."""
     c = doc["counts"]
     v = doc["verdict"].upper() + (f" ({shard_label(doc)})" if shard_label(doc) else "")
-    first = (f"verdict: {v}  ({c['passed']} passed, {c['failed']} failed, {c['crashed']} crashed, "
+    first = (f"verdict: {v}  ({c['passed']} passed, {c.get('inconclusive', 0)} inconclusive, {c['failed']} failed, "
+             f"{c['crashed']} crashed, "
              f"{c['timed_out']} timed out, {c['error']} errors, {c['skipped']} skipped)")
     names = unchecked_names(doc)
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
-    lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc)]
+    lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc), *evidence_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
+
+
+def evidence_lines(doc: dict[str, Any], shown: int = 5) -> list[str]:
+    """The outputs that passed under bounds that are not informative (conformance.evidence): inconclusive
+    ones (and how to accept them), accepted ones, and those judged on their NaN/Inf classes only."""
+    inc: dict[str, int] = {}
+    acc: dict[str, int] = {}
+    cls = 0
+    first: dict[str, str] = {}
+    for c in doc.get("cases", []):
+        for o in c.get("outputs", []):
+            if o.get("class_only"):
+                cls += 1
+            if o.get("inconclusive"):
+                d = acc if o.get("accepted_inconclusive") else inc
+                d[o["name"]] = d.get(o["name"], 0) + 1
+                first.setdefault(o["name"], f"{c['id']}: {o['inconclusive']}")
+    out = []
+    if inc:
+        names = ", ".join(f"{visible(k)} ({n})" for k, n in inc.items())
+        out.append(f"inconclusive: {names} passed only under bounds that are not informative: not evidence. "
+                   "Tighten the declaration, or accept them explicitly with --accept-inconclusive OUTPUT "
+                   "(profile key accept_inconclusive)")
+        out += [f"  e.g. {visible(first[k])}" for k in list(inc)[:shown]]
+    if acc:
+        out.append("accepted as inconclusive by the user: " + ", ".join(f"{visible(k)} ({n})" for k, n in acc.items()))
+    if cls:
+        out.append(f"judged on NaN/Inf classes only: {cls} output(s) of zero-variance groups whose bounds are not "
+                   "informative (docs/tolerances.md, Evidence)")
+    return out
 
 
 def incomplete_lines(doc: dict[str, Any], shown: int = 5) -> list[str]:

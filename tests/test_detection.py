@@ -378,7 +378,11 @@ def test_flush_to_zero_declared_passes():
     flushed are within the bound (rounding floors become the smallest normal value, IEEE 754-2019 §3.3), on
     the subnormal case and on the rest of the tier."""
     doc = _declared_doc(sb.FlushSubnormals("layer_norm"), precision={"subnormals": "flush"})
-    assert doc["verdict"] == "conformant", _describe(doc)
+    # On the subnormal case itself the flush's floors (the smallest normal value) exceed the outputs'
+    # own magnitude: a pass there is not evidence, and the verdict says so (conformance.evidence).
+    bad = [c["id"] for c in doc["cases"] if c["status"] not in ("passed", "skipped")]
+    assert doc["verdict"] == "inconclusive" and bad and all("/subnormal/" in i for i in bad), _describe(doc)
+    assert all(c["status"] == "inconclusive" for c in doc["cases"] if c["id"] in bad), _describe(doc)
 
 
 def test_saved_statistics_in_a_wider_format():

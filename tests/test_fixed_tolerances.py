@@ -90,7 +90,8 @@ def test_fixed_tolerances_on_a_correct_library_kernel():
     # whose failures are traced library findings (test_no_false_alarms.KNOWN: large data, eps = 1e-12
     # in float16) ...
     known = {cid for lib, cid in KNOWN if lib == "torch"}
-    assert derived and all(s == "passed" for cid, s in derived.items() if cid not in known), derived
+    # (inconclusive is no failure: a pass under a bound that is not informative, conformance.evidence)
+    assert derived and all(s in ("passed", "inconclusive") for cid, s in derived.items() if cid not in known), derived
     lines = []
     for dt in DTYPES:
         n, k, ids = _alarms(docs["derived"], docs["torch", dt])

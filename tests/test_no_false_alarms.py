@@ -214,15 +214,18 @@ def test_library_passes_standard_tier(lib: str, op: str):
         k = KNOWN.get((lib, c["id"]))
         failing = {o["name"] for o in c["outputs"] if not o["passed"]}
         if k is None:
-            if c["status"] != "passed":
+            # inconclusive is not an alarm: the verdict says that the pass is not evidence (a bound that is
+            # not informative under the library's honest declaration), never that the kernel is wrong
+            if c["status"] not in ("passed", "inconclusive"):
                 unexpected.append(f"{c['id']}: {c['status']} {sorted(failing)} {c['message'][:300]}")
-        elif c["status"] == "passed":
+        elif c["status"] in ("passed", "inconclusive"):
             if k.strict:
                 gone.append(f"{c['id']} now passes (KNOWN: {k.cause}); remove it from KNOWN")
         elif c["status"] != "failed" or not k.matches(failing):
             unexpected.append(f"{c['id']}: {c['status']} on {sorted(failing)}, KNOWN {sorted(k.outputs)} "
                               f"({k.cause}) {c['message'][:300]}")
     print("\n" + "\n".join(_worst_table(lib, doc)))
+    print(f"{lib} {op}: {sum(c['status'] == 'inconclusive' for c in ran)} of {len(ran)} cases inconclusive")
     assert not unexpected, f"{lib} {op}: false alarms or new failures:\n" + "\n".join(unexpected)
     assert not gone, "\n".join(gone)
 

@@ -18,7 +18,12 @@ power-of-two scaling, 5c7b5fa, had changed float64 values after add45d7.) Regene
 for the oracle's exact paths (issue 8, section 4: the saved mean recognised in the backward, dy
 centred about its offset, exact products): over the 1,365 standard-tier cases no status and no
 output's verdict moved; float64 metrics moved by the oracle's last bits (relative 1e-6 at most,
-outside outputs that are zero in exact arithmetic, where rounding noise of 1e-28 moved). What the record holds is
+outside outputs that are zero in exact arithmetic, where rounding noise of 1e-28 moved). A third time
+for the inconclusive verdict (issue 8, section 1): 23 float64 cases of the fixed kernel, which computes
+float64 data in float32 under a float64 declaration of storage (cancellation and subnormal data: bounds
+far above the outputs' size), went from passed to inconclusive, and the float64 verdicts of the five ops
+from conformant to inconclusive; no other status moved, and outputs gained the fields inconclusive,
+class_only, invariant and accepted_inconclusive. What the record holds is
 described in tests/refactor_capture.py: per standard-tier case of every op and dtype, the Case,
 digests of the generated inputs and of what each kernel entry point received, digests of the
 oracle's outputs and of the elementwise bounds, and every metric, bound summary and verdict of

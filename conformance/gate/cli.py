@@ -95,6 +95,8 @@ def prepare(args: argparse.Namespace) -> None:
         if args.dtype or (entry and entry.dtypes) or prof.dtypes:
             args.dtype = list(plan.dtypes)
         args.tolerance = list(plan.overrides.items())
+        if not getattr(args, "accept_inconclusive", None):
+            args.accept_inconclusive = list(plan.accept_inconclusive)
         args.loaded_kernel = (plan.kernel, spec)
         args._refnorm_plan = plan
         if args.baseline is None and plan.baseline is not None:
@@ -153,9 +155,9 @@ def exit_code(args: argparse.Namespace, doc: dict[str, Any], code: int) -> int:
     from .. import cli
 
     gate = doc.get("gate")
-    if gate is None or code not in (cli.EXIT_OK, cli.EXIT_FAIL):
+    if gate is None or code not in (cli.EXIT_OK, cli.EXIT_FAIL, cli.EXIT_INCONCLUSIVE):
         return code
-    return cli.EXIT_OK if gate["verdict"] == "pass" else cli.EXIT_FAIL
+    return {"pass": cli.EXIT_OK, "inconclusive": cli.EXIT_INCONCLUSIVE}.get(gate["verdict"], cli.EXIT_FAIL)
 
 
 # ---------------------------------------------------------------- a gate on a document made elsewhere
@@ -420,6 +422,8 @@ def cmd_gate(args: argparse.Namespace, argv: Sequence[str]) -> int:
         return cli.EXIT_INTERRUPTED
     if unwritten:
         return cli.EXIT_USAGE
+    if failed and all(d["gate"]["verdict"] == "inconclusive" for d in docs if d["gate"]["verdict"] != "pass"):
+        return cli.EXIT_INCONCLUSIVE
     return cli.EXIT_FAIL if failed else cli.EXIT_OK
 
 

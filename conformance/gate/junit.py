@@ -8,6 +8,7 @@ Layout (the common JUnit XML form that CI systems read):
         <testcase classname="OP.DTYPE" name=CASE_ID time=SECONDS>
           <failure message=FIRST_LINE type=STATUS>full message</failure>   a failed case
           <error message= type=crashed|timed_out|error>...</error>          a crash, timeout or exception
+          <failure message= type=inconclusive>...</failure>                a pass under a bound that is not informative
           <skipped message= type=skipped|waived/>                           skipped or waived
         </testcase>
 
@@ -76,7 +77,7 @@ def _suite(doc: Mapping[str, Any]) -> ET.Element:
         tc = ET.SubElement(suite, "testcase", classname=classname, name=_clean(c["id"]), time=f"{t:.3f}")
         outcome, msg = gate_outcome(c)
         n["tests"] += 1
-        if outcome == "failed":
+        if outcome in ("failed", "inconclusive"):  # an inconclusive pass is not evidence: never green
             n["failures"] += 1
             el = ET.SubElement(tc, "failure", message=_first_line(msg, c["status"]), type=_clean(c["status"]))
             el.text = _clean(msg)

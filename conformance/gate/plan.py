@@ -41,6 +41,7 @@ class Plan:
     growth: float = DEFAULT_GROWTH
     growth_floor: float = DEFAULT_GROWTH_FLOOR
     waivers: tuple[Waiver, ...] = ()
+    accept_inconclusive: tuple[str, ...] = ()
 
     @property
     def load_spec(self) -> str:
@@ -52,7 +53,7 @@ class Plan:
 
         return RunOptions(tier=self.tier, dtypes=self.dtypes, case_ids=self.case_ids, seed=self.seed,
                           workers=self.workers, timeout=self.timeout, overrides=dict(self.overrides),
-                          command=command)
+                          command=command, accept_inconclusive=self.accept_inconclusive)
 
     def cases(self):
         """The cases this plan runs, in catalog order (conformance.run.select_cases)."""
@@ -135,6 +136,7 @@ def plan_runs(profile: Profile | None, *, specs: Sequence[str] = (), tier: str |
             tier=tier or prof.tier or DEFAULTS["tier"],
             seed=seed if seed is not None else (prof.seed if prof.seed is not None else DEFAULTS["seed"]),
             workers=w, timeout=float(t), overrides=ov, case_ids=tuple(case_ids), baseline=bl,
+            accept_inconclusive=tuple(prof.accept_inconclusive),
             growth=growth if growth is not None else (prof.growth or DEFAULT_GROWTH),
             growth_floor=growth_floor if growth_floor is not None else (
                 prof.growth_floor if prof.growth_floor is not None else DEFAULT_GROWTH_FLOOR),

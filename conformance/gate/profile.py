@@ -98,6 +98,8 @@ class Profile:
     waivers: tuple[Waiver, ...] = ()
     growth: float | None = None
     growth_floor: float | None = None
+    #: outputs whose inconclusive passes are accepted (check's --accept-inconclusive)
+    accept_inconclusive: tuple[str, ...] = ()
 
     def overrides_for(self, op: str) -> dict[str, tuple[float, float]]:
         """The tolerance overrides that apply to a kernel of this op (op-specific ones win)."""
@@ -222,7 +224,7 @@ def load_profile(path: str | Path) -> Profile:
 
 # ---------------------------------------------------------------- validation
 _TOP_KEYS = ("kernels", "ops", "dtypes", "tier", "seed", "workers", "timeout", "tolerances", "waivers",
-             "growth", "growth_floor")
+             "growth", "growth_floor", "accept_inconclusive")
 _KERNEL_KEYS = ("spec", "dtypes", "baseline")
 _WAIVER_KEYS = ("case", "output", "kernel", "reason", "expires")
 
@@ -379,6 +381,8 @@ def parse_profile(table: Mapping[str, Any], *, where: str = "profile", base: Pat
         kw["growth_floor"] = ctx.number("growth_floor", table["growth_floor"], "growth_floor")
     if "tolerances" in table:
         kw["tolerances"] = _tolerances(ctx, table["tolerances"])
+    if "accept_inconclusive" in table:
+        kw["accept_inconclusive"] = ctx.choices("accept_inconclusive", table["accept_inconclusive"], OUTPUT_NAMES)
     if "waivers" in table:
         kw["waivers"] = _waivers(ctx, table["waivers"])
     kernels: list[KernelEntry] = []

@@ -26,7 +26,7 @@ from .profile import Waiver
 __all__ = ["today_utc", "judge_case", "gate_outcome", "waiver_summary", "WaiverUse", "OUTCOMES"]
 
 #: Gate outcomes of a case, as CI systems know them (JUnit: passed, failure, error, skipped).
-OUTCOMES = ("passed", "failed", "error", "skipped", "waived")
+OUTCOMES = ("passed", "inconclusive", "failed", "error", "skipped", "waived")
 
 
 def today_utc() -> date:
@@ -98,6 +98,8 @@ def gate_outcome(case: dict[str, Any]) -> tuple[str, str]:
         return "passed", ""
     if status == "skipped":
         return "skipped", msg
+    if status == "inconclusive":  # not a failure a waiver covers: accepted by output, or not at all
+        return "inconclusive", msg
     if w.get("waived"):
         by = "; ".join(f"#{b['index']} until {b['expires']}: {b['reason']}" for b in w["by"])
         return "waived", f"{status}, waived ({by})" + (f"\n{msg}" if msg else "")

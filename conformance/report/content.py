@@ -252,7 +252,7 @@ def scope_line(doc: dict[str, Any]) -> str:
 
 def counts_line(doc: dict[str, Any]) -> str:
     c = doc.get("counts", {})
-    items = [("passed", "passed"), ("failed", "failed"), ("crashed", "crashed"), ("timed_out", "timed out"),
+    items = [("passed", "passed"), ("inconclusive", "inconclusive"), ("failed", "failed"), ("crashed", "crashed"), ("timed_out", "timed out"),
              ("error", "errors"), ("skipped", "skipped")]
     return ", ".join(f"{c.get(k, 0)} {label}" for k, label in items)
 
@@ -289,9 +289,10 @@ def failures(doc: dict[str, Any]) -> list[Failure]:
     """Cases with status failed, crashed, timed out or error, in run order."""
     out = []
     for c in doc.get("cases", []):
-        if c["status"] not in BAD:
+        if c["status"] not in BAD and c["status"] != "inconclusive":
             continue
-        bad_outs = [o["name"] for o in c.get("outputs", []) if not o.get("passed", True)]
+        bad_outs = [o["name"] for o in c.get("outputs", []) if not o.get("passed", True)
+                    or (o.get("inconclusive") and not o.get("accepted_inconclusive"))]
         wb = max((as_float(o.get("budget_used", 0.0)) for o in c.get("outputs", [])), default=None)
         w = c.get("waiver") or {}
         waived = None
@@ -460,6 +461,9 @@ def environment_facts(doc: dict[str, Any], peers: dict[str, Any] | None = None) 
         m = run["merged"]
         facts.append(("merged", f"{len(m.get('shards', []))} of {m.get('count')} shards; each shard's timing, command "
                                 "and environment are in results.json, run.merged.shards"))
+    if run.get("accept_inconclusive"):
+        facts.append(("accepted as inconclusive", ", ".join(str(k) for k in run["accept_inconclusive"])
+                      + " (passes under bounds that are not informative, accepted by the user)"))
     if run.get("overrides"):
         facts.append(("tolerance overrides", ", ".join(f"{k}: atol {fmt(a)}, rtol {fmt(r)}"
                                                         for k, (a, r) in run["overrides"].items())))

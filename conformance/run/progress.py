@@ -12,7 +12,7 @@ from ..results import CaseResult
 #: Characters of a case's message shown in its progress line.
 _LINE = 240
 
-_MARK = {"passed": "PASS", "failed": "FAIL", "crashed": "CRASH", "timed_out": "TIMEOUT",
+_MARK = {"passed": "PASS", "inconclusive": "INCONCL", "failed": "FAIL", "crashed": "CRASH", "timed_out": "TIMEOUT",
          "error": "ERROR", "skipped": "SKIP"}
 
 

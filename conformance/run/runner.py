@@ -36,6 +36,8 @@ class RunOptions:
     shard: tuple[int, int] | None = None
     #: with ``shard``: measured seconds per case id of an earlier run, and what names it (shards.read_durations)
     shard_durations: tuple[Mapping[str, float], str] | None = None
+    #: outputs whose inconclusive passes the user accepts (conformance.evidence; recorded in the results)
+    accept_inconclusive: tuple[str, ...] = ()
 
 
 def select_cases(kernel: Kernel, opts: RunOptions) -> list[Case]:
@@ -118,6 +120,7 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
             "workers": opts.workers,
             "timeout_s": opts.timeout,
             "overrides": {k: list(v) for k, v in opts.overrides.items()},
+            "accept_inconclusive": list(opts.accept_inconclusive),
             "started": started,
             "finished": now_iso(),
             "duration_s": round(time.monotonic() - t0, 3),

@@ -83,9 +83,14 @@ _KERNEL = {
         "entry_points": _array({"enum": list(ENTRY_POINTS)}, minItems=1),
         "outputs": _array({"enum": list(OUTPUTS)}), "grads": _array({"enum": list(ops.GRADS)}),
         "dtypes": _array(_FORMAT, minItems=1), "layouts": _array({"type": "string"}),
-        "conventions": {"type": "object"},
+        "conventions": {"type": "object", "additionalProperties": {"anyOf": [
+            {"type": ["string", "number", "boolean", "null"]}, {"type": "array", "items": {"type": "string"}}]}},
         "precision": {"type": "object", "additionalProperties": _PRECISION},
-        "notes": {"type": "string"}}}
+        "notes": {"type": "string"},
+        # as the results document types them (docs/results-schema.json): score copies the declaration there
+        **{f: {"type": "boolean"} for f in ("strided", "optional_params", "momentum_none", "updates_running")},
+        "min_reduction": {"type": "integer", "minimum": 1},
+        "device": {"type": ["string", "null"], "maxLength": 1000}}}
 _CASE_RECORD = {
     "type": "object",
     "required": ["op", "dtype", "shape", "layout", "values", "weight", "bias", "eps", "mode", "running",

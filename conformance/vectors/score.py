@@ -150,4 +150,11 @@ def score_outputs(man: Manifest, outputs: str | os.PathLike, *, command: str = "
                     "exported": data["created"], "exported_by": f"refnorm {data['refnorm']}",
                     "export_command": data["command"], "declaration": data["declaration"]},
     }
-    return build_document(data["kernel"], run, results, complete)
+    doc = build_document(data["kernel"], run, results, complete)
+    from ..documents import RESULTS, _schema_error
+
+    err = _schema_error(doc, RESULTS)  # what the manifest declared must make a results document refnorm reads
+    if err is not None:
+        raise VectorsError(f"{man.folder}: the manifest's declaration gives a results document that is not valid "
+                           f"at {err[0] or 'its top'}: {err[1]}")
+    return doc
