@@ -42,7 +42,7 @@ import numpy as np
 
 from . import dtypes, ops
 
-__all__ = ["reference_scales", "uninformative", "invariant_violations", "DEGENERATE_VALUES"]
+__all__ = ["reference_scales", "uninformative", "zero_variance", "invariant_violations", "DEGENERATE_VALUES"]
 
 #: Value kinds whose groups have zero variance: outputs there are judged on their classes when the
 #: bound is not informative.
@@ -93,6 +93,11 @@ def reference_scales(case: Any, inputs64: Mapping[str, Any], names) -> dict[str,
     return out
 
 
+def zero_variance(case: Any) -> bool:
+    """Every group of the case has zero variance: a degenerate value kind, or one element per group."""
+    return case.values in DEGENERATE_VALUES or ops.get(case.op).axes.group_length(case) == 1
+
+
 def uninformative(expected: np.ndarray, bound: np.ndarray, scale: float = 0.0,
                   nonfinite: int = 0, tiny: float = 0.0) -> str:
     """Why a bound is not informative ("" when it is): ``bound`` elementwise over ``expected``;
@@ -136,7 +141,7 @@ def invariant_violations(case: Any, conventions: Any, inputs64: Mapping[str, Any
         ya = np.asarray(y).astype(np.float64).reshape(view.view_shape)
     except (TypeError, ValueError):
         return ""  # shape and format are the comparison's to report
-    u = max(float(dtypes.finfo(y_dtype).eps) / 2.0, float(u or 0.0))
+    u = max(dtypes.unit_roundoff(y_dtype), float(u or 0.0))
     sub = float(dtypes.finfo(y_dtype).smallest_subnormal)  # y's rounding where it is subnormal is absolute
     w = inputs64.get("weight")
     b = inputs64.get("bias")

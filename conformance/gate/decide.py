@@ -82,19 +82,17 @@ def apply_gate(doc: dict[str, Any], *, waivers: Sequence[Waiver] = (), today: da
     if outcomes["failed"] or outcomes["error"]:
         reasons.append(f"{outcomes['failed']} case(s) failed and {outcomes['error']} crashed, timed out or "
                        "raised, not waived")
-    inconclusive_only = not reasons
-    if outcomes["inconclusive"]:
-        reasons.append(f"{outcomes['inconclusive']} case(s) passed only under bounds that are not informative "
-                       "(inconclusive) and their outputs are not accepted (--accept-inconclusive, profile key "
-                       "accept_inconclusive)")
-    else:
-        inconclusive_only = False
+    inconclusive = (f"{outcomes['inconclusive']} case(s) passed only under bounds that are not informative "
+                    "(inconclusive) and their outputs are not accepted (--accept-inconclusive, profile key "
+                    "accept_inconclusive)") if outcomes["inconclusive"] else None
+    if inconclusive:
+        reasons.append(inconclusive)
     if ws["expired"]:
         reasons.append(f"{len(ws['expired'])} expired waiver(s) match cases of this run")
     if not outcomes["passed"] and not outcomes["inconclusive"] and not (doc.get("run") or {}).get("shard"):  # a shard may hold only skipped cases
         reasons.append("no case passed: nothing was checked")
     doc["gate"] = {
-        "verdict": ("inconclusive" if inconclusive_only and len(reasons) == 1 else "fail") if reasons else "pass",
+        "verdict": "pass" if not reasons else ("inconclusive" if reasons == [inconclusive] else "fail"),
         "reasons": reasons,
         "outcomes": outcomes,
         "waived": waived,

@@ -19,7 +19,7 @@ from ..arrays import as_numpy
 from ..cases.generators import make_inputs
 from ..cases.model import Case
 from ..compare import compare_output
-from ..evidence import DEGENERATE_VALUES, invariant_violations, reference_scales
+from ..evidence import invariant_violations, reference_scales, zero_variance
 from ..kernel import Kernel, call_with
 from ..results import CaseResult, cap_text
 from ..tolerances import derive_bounds, output_dtype, override_bound
@@ -228,8 +228,7 @@ def judged(case: Case, results: list, modified: list[str] = (), **timing: float)
     """The case's result from its output comparisons: failed when one output is not within its bound
     (or the kernel modified an input), else passed."""
     for r in results:
-        if r.passed and r.inconclusive and (case.values in DEGENERATE_VALUES
-                                            or ops.get(case.op).axes.group_length(case) == 1):
+        if r.passed and r.inconclusive and zero_variance(case):
             # zero-variance groups: the outputs have no scale of their own; these cases are there for the
             # NaN/Inf classes (a lost eps), which the comparison judged
             r.class_only, r.inconclusive = r.inconclusive, ""
@@ -298,7 +297,7 @@ def _execute(kernel: Kernel, case: Case, seed: int,
         r = compare_output(name, act, exp, bounds[name], dtype=output_dtype(name, prec))
         if name == "y" and r.passed:
             rp = prec.resolved()
-            u = max(float(dtypes.finfo(f).eps) / 2.0 for f in (rp.storage, rp.params, rp.accumulate, rp.statistics))
+            u = max(dtypes.unit_roundoff(f) for f in (rp.storage, rp.params, rp.accumulate, rp.statistics))
             broken = invariant_violations(case, conv, inp64, act, output_dtype(name, prec), u)
             if broken:  # a wrong answer that the declared bound is too loose to see
                 r.passed, r.invariant, r.inconclusive = False, broken, ""
