@@ -27,12 +27,15 @@ Two ways to evaluate the same formulas:
   while it is in cache, in y's or dx's own memory and one scratch buffer,
   on a few threads. Each group's reductions run on one thread in one fixed
   order, so the bits do not depend on the thread count. Sums along the
-  contiguous inner axis are BLAS dots (``np.vecdot``; a vector of ones for a
-  plain sum) over blocks of at most 256 elements, the block results summed
-  pairwise: one pass and no product temporary, and as accurate as NumPy's
-  pairwise sum (measured here on normal data: within 2.4 units of roundoff
-  times sum |terms|, like np.sum; ``np.einsum``, which accumulates in one
-  running sum, reached 80). Where the weight is constant along the inner
+  contiguous inner axis are NumPy pairwise sums (``np.add.reduce``, of the
+  product written to the chunk's scratch buffer) over blocks of at most 256
+  elements, the block results summed pairwise: as accurate as one pairwise
+  sum (within 2.4 units of roundoff times sum |terms| on normal data,
+  measured here), and the same bits on every CPU. BLAS dots
+  (``np.vecdot``) were 10-25% faster but not reproducible: OpenBLAS picks
+  its dot kernel, and so the order of the additions, by CPU model, which
+  moved the oracle's last bits between an Intel and an AMD machine.
+  ``np.einsum``, which accumulates in one running sum, reached 80 units. Where the weight is constant along the inner
   axes (batch, group, instance norm) the formulas are rearranged, without
   changing them, to save passes (see the two functions).
 
@@ -305,9 +308,9 @@ def _reduce(a: np.ndarray, b: np.ndarray | None, axes: tuple[int, ...], block: i
     """sum(a * b) (sum(a) for b None) over ``axes``, keepdims, without a full temporary where possible.
 
     a and b have the same shape. With the last axis reduced and a ``block``
-    length (see :func:`_inner_block`): a BLAS dot per block of the inner
-    rows (np.vecdot, with a vector of ones for a plain sum), the block
-    results summed pairwise, then a NumPy sum over the other axes. Otherwise
+    length (see :func:`_inner_block`): a pairwise sum per block of the inner
+    rows (of the product, written to ``tmp`` where given), the block results
+    summed pairwise, then a NumPy sum over the other axes. Otherwise
     np.sum, of the product written to ``tmp`` (or a new array).
     """
     last = a.ndim - 1
@@ -315,7 +318,11 @@ def _reduce(a: np.ndarray, b: np.ndarray | None, axes: tuple[int, ...], block: i
         return sum_keep(a if b is None else np.multiply(a, b, out=tmp), axes)
     rest = tuple(ax for ax in axes if ax != last)
     split = a.shape[:last] + (a.shape[last] // block, block)
-    p = np.vecdot(a.reshape(split), _ones(block) if b is None else b.reshape(split))
+    if b is None:
+        p = np.add.reduce(a.reshape(split), axis=-1)
+    else:
+        p = np.add.reduce(np.multiply(a.reshape(split), b.reshape(split),
+                                      out=None if tmp is None else tmp.reshape(split)), axis=-1)
     p = np.add.reduce(p, axis=-1)
     if rest:
         p = _sum_last(p, rest)

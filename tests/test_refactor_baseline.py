@@ -23,7 +23,13 @@ for the inconclusive verdict (issue 8, section 1): 23 float64 cases of the fixed
 float64 data in float32 under a float64 declaration of storage (cancellation and subnormal data: bounds
 far above the outputs' size), went from passed to inconclusive, and the float64 verdicts of the five ops
 from conformant to inconclusive; no other status moved, and outputs gained the fields inconclusive,
-class_only, invariant and accepted_inconclusive. What the record holds is
+class_only, invariant and accepted_inconclusive. A fourth time when the oracle's inner sums moved
+from BLAS dots (np.vecdot) to NumPy pairwise sums: the record made on one machine failed on another
+(an AMD EPYC with AVX-512, where OpenBLAS picks other dot kernels, so other addition orders), every
+op and dtype, in the oracle's last bits only. Before regenerating, a fresh capture was compared with
+the stored one field by field: no status, verdict, count, input, call or id moved; the oracle's and
+the bounds' digests, the metrics and the messages that print them moved, budgets by 2e-7 relative at
+most. What the record holds is
 described in tests/refactor_capture.py: per standard-tier case of every op and dtype, the Case,
 digests of the generated inputs and of what each kernel entry point received, digests of the
 oracle's outputs and of the elementwise bounds, and every metric, bound summary and verdict of
