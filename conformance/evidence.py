@@ -86,6 +86,8 @@ def reference_scales(case: Any, inputs64: Mapping[str, Any], names) -> dict[str,
         r = 1.0 / np.sqrt(v + float(case.eps))
         if "dx" in names:
             out["dx"] = _finite_max(r * dy * w)
+            if inputs64.get("dh") is not None:  # a fused residual add: dx = dh + the norm's gradient
+                out["dx"] = max(out["dx"], _finite_max(inputs64["dh"]))
         if "dweight" in names:
             out["dweight"] = _finite_max(np.sum(np.abs(dy) * np.maximum(1.0, np.abs(d * r)), axis=view.param_red))
         if "dbias" in names:

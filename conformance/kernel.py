@@ -19,6 +19,7 @@ from typing import Any, Callable, Mapping
 from . import dtypes
 from . import ops as _ops
 from .ops import GRADS, OPS, RUNNING_OUTPUTS, SAVED_FORMS, STATISTICS
+from .ops.spec import H_FORMATS, RESIDUAL_OUTPUTS
 
 __all__ = [
     "OPS",
@@ -145,6 +146,11 @@ class Conventions:
     y_form : "centred" (y = (x - mean) * scale + bias: the mean is subtracted from x first) or
         "folded" (y = x * scale + shift, shift = bias - mean * scale: a rounding of |mean| scale
         that cancels where |mean| is large against the spread; docs/tolerances.md).
+    h_format : fused residual-add ops: "storage" (h = x + residual is rounded to the storage format,
+        which h is stored in, before it is normalized: the usual choice) or "accumulate" (the sum is
+        normalized as the accumulation format holds it; backward recomputes it from x and residual).
+    weight_offset : RMS norm and residual add + RMS norm: the scale is weight_offset + weight, with
+        the weight stored centred at zero (1: y = x r (1 + weight)); 0 for the usual weight.
     """
 
     momentum_convention: str = "new"
@@ -153,6 +159,8 @@ class Conventions:
     saved: tuple[str, ...] = ()
     running: str = "return"
     y_form: str = "centred"
+    h_format: str = "storage"
+    weight_offset: float = 0.0
 
     def as_dict(self) -> dict[str, Any]:
         return {f.name: (list(getattr(self, f.name)) if f.name == "saved" else getattr(self, f.name))
@@ -299,6 +307,17 @@ def _validate(k: Kernel) -> None:
         v = getattr(c, f)
         if not isinstance(v, str) or v not in choices:
             bad(f"conventions.{f} is {v!r}, expected {' or '.join(map(repr, choices))}")
+    if not isinstance(c.h_format, str) or c.h_format not in H_FORMATS:
+        bad(f"conventions.h_format is {c.h_format!r}, expected {' or '.join(map(repr, H_FORMATS))}")
+    if c.h_format != "storage" and not spec.residual:
+        bad(f"conventions.h_format is {c.h_format!r}, but {k.op} adds no residual (h_format is for "
+            f"{', '.join(n for n, s in _ops.SPECS.items() if s.residual)})")
+    wo = c.weight_offset
+    if isinstance(wo, bool) or not isinstance(wo, (int, float)) or not math.isfinite(wo):
+        bad(f"conventions.weight_offset is {wo!r}, expected a finite number (0: scale by weight; 1: by 1 + weight)")
+    if wo != 0 and not spec.weight_offsets:
+        bad(f"conventions.weight_offset is {wo!r}, but {k.op} has no weight-offset convention (it is for "
+            f"{', '.join(n for n, s in _ops.SPECS.items() if s.weight_offsets)})")
     _names(c, "saved", c.saved, lambda what: bad(f"conventions.{what}"))
     allowed_saved = _ops.STATISTICS
     for s in c.saved:
@@ -338,11 +357,12 @@ def _check_outputs(k: Kernel, bad: Callable[[str], None]) -> None:
     returns_running = bool(spec.running_outputs) and c.running == "return"
     if k.outputs[:1] != ("y",):
         bad(f"outputs is {k.outputs}, expected 'y' first")
-    allowed = {"y", *spec.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
+    allowed = {"y", *spec.residual_outputs, *spec.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
     unknown = [o for o in k.outputs if o not in allowed]
     if unknown:
         bad(f"outputs names {unknown}, which the declaration does not produce "
-            f"(y, statistics from {', '.join(spec.saved)}, running={c.running!r}"
+            f"(y, {''.join(o + ', ' for o in spec.residual_outputs)}statistics from {', '.join(spec.saved)}, "
+            f"running={c.running!r}"
             + ("" if bool(spec.running_outputs) else f"; {k.op} has no running statistics") + ")")
     if k.forward is None:
         if k.outputs != ("y",):
@@ -375,7 +395,7 @@ def _check_precision(k: Kernel, bad: Callable[[str], None]) -> None:
         for key in ps:
             if key not in dtypes.FORMATS:
                 bad(f"precision has an entry for {key!r}, expected dtype names from {', '.join(dtypes.FORMATS)}")
-    known_outputs = {"y", *STATISTICS, *RUNNING_OUTPUTS, *GRADS}
+    known_outputs = {"y", *RESIDUAL_OUTPUTS, *STATISTICS, *RUNNING_OUTPUTS, *GRADS}
     for p in plist:
         if not isinstance(p, Precision):
             bad(f"precision entries must be Precision, received {type(p).__name__}")
@@ -427,6 +447,12 @@ def unchecked_outputs(k: Kernel) -> list[dict[str, Any]]:
     no_y = tuple(m for m in modes if fwd[m] is None)
     if no_y:
         add("y", no_y, " and ".join(f"no {entry[m][0]} entry point" for m in no_y))
+    for h in _ops.get(k.op).residual_outputs:
+        if k.forward is None:
+            add(h, ("train",), "no forward entry point: backward is given the oracle's h (rounded to the storage "
+                "format), the kernel's own is never computed")
+        elif h not in k.outputs:
+            add(h, ("train",), f"not in outputs {tuple(k.outputs)}: the residual stream passed on is not checked")
     if k.forward is None:
         for s in k.conventions.saved:
             add(s, ("train",), "no forward entry point: backward is given the oracle's saved statistics "

@@ -138,7 +138,7 @@ def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
             r["max_abs"] = max(r["max_abs"], as_float(o.get("max_abs", 0.0)))
             r["max_rel"] = max(r["max_rel"], as_float(o.get("max_rel", 0.0)))
             r["max_ulp"] = max(r["max_ulp"], int(o.get("max_ulp", 0) or 0))
-    order = {"y": 0, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
+    order = {"y": 0, "h": 0.5, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
              "running_var": 4, "dx": 5, "dweight": 6, "dbias": 7, "*": 9}
     return [_jsonable(rows[k]) for k in sorted(rows, key=lambda k: (k[0], k[1], order.get(k[2], 8), k[2]))]
 

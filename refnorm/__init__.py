@@ -1,11 +1,20 @@
 """refnorm: a float64 oracle of normalization layers.
 
 Forward and backward passes and running-statistic updates of batch, layer,
-group, instance and RMS normalization, computed in float64 from inputs upcast
-exactly, with every convention that libraries disagree on as an explicit
+group, instance and RMS normalization (and of the fused residual add + layer or
+RMS norm), computed in float64 from inputs upcast exactly, with every convention that libraries disagree on as an explicit
 keyword argument. Pure functions; no hidden state.
 """
 
+from .add_norm import (
+    AddNormBackward,
+    AddNormForward,
+    add_layer_norm_backward,
+    add_layer_norm_forward,
+    add_rms_norm_backward,
+    add_rms_norm_forward,
+    residual_stream,
+)
 from .batch_norm import batch_norm_backward, batch_norm_forward
 from .errors import RefnormError
 from .group_norm import group_norm_backward, group_norm_forward
@@ -32,4 +41,11 @@ __all__ = [
     "rms_norm_forward",
     "rms_norm_backward",
     "running_update",
+    "AddNormForward",
+    "AddNormBackward",
+    "residual_stream",
+    "add_layer_norm_forward",
+    "add_layer_norm_backward",
+    "add_rms_norm_forward",
+    "add_rms_norm_backward",
 ]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 from . import _core
@@ -13,11 +14,19 @@ from ._validate import (
     check_eps,
     check_nonempty,
     check_positive,
+    check_real,
     check_same_shape,
 )
 from .results import NormBackward, NormForward
 
 __all__ = ["rms_norm_forward", "rms_norm_backward"]
+
+
+def _offset(w, weight_offset: Any):
+    """weight_offset + w (exact in float64 for the offsets 0 and 1 and any weight of a narrower format)."""
+    c = check_real("weight_offset", weight_offset, -math.inf, math.inf, "a finite number (0: scale by weight; "
+                   "1: scale by 1 + weight)")
+    return w if (w is None or c == 0.0) else c + w
 
 
 def rms_norm_forward(
@@ -29,6 +38,7 @@ def rms_norm_forward(
     axes: Any = None,
     eps: float = 1e-6,
     eps_placement: str = "inside",
+    weight_offset: float = 0.0,
 ) -> NormForward:
     """RMS normalization forward, in float64 (Zhang & Sennrich 2019, eq. 4).
 
@@ -36,6 +46,9 @@ def rms_norm_forward(
     over the normalized axes (trailing ``normalized_shape`` or explicit ``axes``).
     eps: 1e-6 is common practice (T5, LLaMA: from memory); torch's RMSNorm with
     eps=None uses finfo(dtype).eps (from memory).
+    weight_offset: the scale is weight_offset + weight, for a weight stored centred at zero:
+    0 in torch's RMSNorm and Keras' RMSNormalization (checked here: torch 2.13, Keras 3.15),
+    1 in Gemma's RMS norm, y = x r (1 + weight) (from memory). Without a weight, no scale.
 
     Returns NormForward with mean=None, var = mean(x^2), rstd = 1/sqrt(var + eps).
     """
@@ -46,6 +59,7 @@ def rms_norm_forward(
     plan = feature_plan(xf.shape, normalized_shape, axes)
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
     b = check_param("bias", None if bias is None else as_float64("bias", bias), plan)
+    w = _offset(w, weight_offset)
     xv = xf.reshape(plan.view)
     y, st = _core.fused_forward(xv, plan.red, w, b, eps=eps, placement=eps_placement, center=False)
     ss = plan.stat_shape
@@ -62,11 +76,13 @@ def rms_norm_backward(
     eps: float = 1e-6,
     rstd: Any = None,
     eps_placement: str = "inside",
+    weight_offset: float = 0.0,
 ) -> NormBackward:
     """RMS normalization backward, in float64.
 
     Per row, with xhat = x r and g = dy * weight:  dx = r g - r xhat mean(g xhat);
     dweight = sum over rows of dy * xhat, dbias = sum over rows of dy.
+    weight_offset: g = dy * (weight_offset + weight); dweight is unchanged (d(c + w)/dw = 1).
     """
     xf = as_float64("x", x)
     dyf = as_float64("dy", dy)
@@ -76,6 +92,7 @@ def rms_norm_backward(
     check_choice("eps_placement", eps_placement, EPS_PLACEMENTS)
     plan = feature_plan(xf.shape, normalized_shape, axes)
     w = check_param("weight", None if weight is None else as_float64("weight", weight), plan)
+    w = _offset(w, weight_offset)
     sr = check_stat("rstd", None if rstd is None else as_float64("rstd", rstd), plan)
     check_positive("rstd", sr, "an inverse standard deviation 1/sqrt(var + eps)")
     xv = xf.reshape(plan.view)

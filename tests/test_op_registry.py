@@ -15,6 +15,8 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+
+import refnorm
 import pytest
 
 from conformance import dtypes, ops
@@ -179,11 +181,14 @@ def test_bounds_exist_for_every_output(name):
         cases.append((replace(m, mode="eval"), ("y",) + spec.grads))
     for c, outputs in cases:
         inp = make_inputs(c, prec, 0)
-        inp64 = {k: None if v is None else np.asarray(v).astype(np.float64) for k, v in inp.items()}
+        inp64 = ops.oracle_view(c, conv, {k: None if v is None else np.asarray(v).astype(np.float64)
+                                          for k, v in inp.items()})
         fwd = ops.oracle_forward(c, conv, inp64)
         exp = ops.forward_outputs(c, conv, fwd, ("y",) + spec.saved, True)
         bwd = ops.oracle_backward(c, conv, inp64)
         exp.update(dx=bwd.dx, dweight=bwd.dweight, dbias=bwd.dbias)
+        if spec.residual:  # the fused op's own outputs: h, and dh in dx (ops/residual.py)
+            exp.update(h=inp64["h"], dx=bwd.dx + inp64["dh"])
         assert set(exp) == set(outputs), c.id
         bounds = derive_bounds(c, prec, conv, inp64, exp)
         assert set(bounds) == set(outputs)
@@ -203,16 +208,26 @@ def _oracle_kernel(spec, dtype):
     def up(kw):
         return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
 
+    def h_of(kw):
+        # a fused residual add: the description's functions normalize h, the sum rounded once to storage
+        return refnorm.residual_stream(kw["x"], kw["residual"], kw.get("residual_bias"), h_format=dtype)[1]
+
     def forward(**kw):
-        return rnd(call_with(spec.forward, up(kw)).y)
+        kw = up(kw)
+        if spec.residual:
+            h = h_of(kw)
+            return rnd(call_with(spec.forward, {**kw, "x": h}).y), rnd(h)
+        return rnd(call_with(spec.forward, kw).y)
 
     def backward(**kw):
-        g = call_with(spec.backward, up(kw))
-        return rnd(g.dx), rnd(g.dweight), rnd(g.dbias)
+        kw = up(kw)
+        g = call_with(spec.backward, {**kw, "x": h_of(kw)} if spec.residual else kw)
+        dx = g.dx + kw["dh"] if spec.residual else g.dx
+        return rnd(dx), rnd(g.dweight), rnd(g.dbias)
 
     entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
     return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False,
-                  **entries)
+                  outputs=("y", *spec.residual_outputs), **entries)
 
 
 @pytest.mark.parametrize("name", NAMES)

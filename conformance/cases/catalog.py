@@ -130,6 +130,19 @@ def _range_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
             yield replace(m, mode="eval", running_values=r)
 
 
+def _residual_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
+    """A fused residual add's bias on the residual stream (h = x + residual + residual_bias: three terms,
+    two roundings), with and without the layer's own weight and bias, and on a longer row."""
+    if not spec.residual:
+        return
+    m = _mid(spec, dtype, tier)
+    yield replace(m, residual_bias=True, weight="random", bias="random")
+    yield replace(m, residual_bias=True, weight="none", bias="none")
+    yield replace(m, residual_bias=True, values="cancellation")
+    shape, k, layout = spec.shapes.long_cancellation
+    yield replace(_base(spec, dtype, shape, layout, k, tier), residual_bias=True)
+
+
 # ---------------------------------------------------------------- tiers
 def _smoke(spec: OpSpec, dtype: str) -> Iterator[Case]:
     yield from _shape_cases(spec, dtype, "smoke")
@@ -139,10 +152,13 @@ def _smoke(spec: OpSpec, dtype: str) -> Iterator[Case]:
     if spec.has_eval:
         yield replace(m, mode="eval")
         yield replace(m, running=True)
+    if spec.residual:
+        yield replace(m, residual_bias=True)
 
 
 def _standard(spec: OpSpec, dtype: str) -> Iterator[Case]:
-    for gen in (_shape_cases, _value_cases, _param_cases, _stride_cases, _mode_cases, _long_cases, _range_cases):
+    for gen in (_shape_cases, _value_cases, _param_cases, _stride_cases, _mode_cases, _long_cases, _range_cases,
+                _residual_cases):
         yield from gen(spec, dtype, "standard")
 
 

@@ -191,7 +191,8 @@ def _at_mean(case: Case, rm: np.ndarray, rng: np.random.Generator) -> np.ndarray
 
 
 def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
-    """x, dy, weight, bias, running_mean, running_var for the case, in the kernel's dtypes.
+    """x, dy, weight, bias, running_mean, running_var for the case, in the kernel's dtypes (and residual,
+    residual_bias, dh for a fused residual-add op: _residual).
 
     x and dy are in the storage dtype, laid out per ``case.strides``; parameters and
     running statistics in the params dtype. Values are drawn in float64 and rounded
@@ -227,4 +228,33 @@ def make_inputs(case: Case, precision: Precision, seed: int) -> dict[str, Any]:
         out["running_var"] = rv.astype(pt)
         if case.running_values == "at_mean":
             out["x"] = laid_out(_at_mean(case, rm, rng).astype(st), case.strides)
+    if spec.residual:
+        out.update(_residual(case, x64, rng, st, pt, ps))
     return out
+
+
+#: Value kinds whose structure a per-element split of h would break: h is split in a fixed ratio.
+_SPLIT_FIXED = ("constant", "zeros", "nonfinite", "at_mean")
+
+
+def _residual(case: Case, t64: np.ndarray, rng: np.random.Generator, st, pt, ps) -> dict[str, Any]:
+    """x, residual, residual_bias and dh of a fused residual-add case, whose value kind describes h.
+
+    The value kind's draw t is what h = x + residual (+ residual_bias) is meant to be: residual = f t
+    with f ~ U(0.25, 0.75) per element (0.5 where the kind's structure must survive: constant rows,
+    zeros, NaN and Inf, which the residual carries), x = t - residual - residual_bias, each rounded
+    once to the storage format; so x and residual have varying exponent differences, and the add
+    rounds where a kernel's would. residual_bias (cases with ``rbias``) is 0.5 N(0, 1) in the params
+    format; dh is N(0, 1) in the storage format, laid out as dy. Drawn after every other input, so
+    the other inputs are those of the same case without a residual.
+    """
+    fixed = case.values in _SPLIT_FIXED
+    f = np.full(case.shape, 0.5) if fixed else rng.uniform(0.25, 0.75, size=case.shape)
+    finite = np.isfinite(t64)
+    r64 = np.where(finite, f * t64, t64).astype(st).astype(np.float64)
+    rb = (0.5 * rng.standard_normal(ps)).astype(pt) if case.residual_bias else None
+    with np.errstate(invalid="ignore", over="ignore"):
+        x64 = np.where(finite, t64 - r64 - (0.0 if rb is None else rb.astype(np.float64)), 0.0)
+    dh64 = rng.standard_normal(case.shape)
+    return {"x": laid_out(x64.astype(st), case.strides), "residual": laid_out(r64.astype(st), case.strides),
+            "residual_bias": rb, "dh": laid_out(dh64.astype(st), case.strides)}

@@ -27,6 +27,11 @@ RUNNING_VALUE_KINDS = ("near", "far", "wide", "at_mean")  # eval's running stati
 STRIDE_KINDS = ("contiguous", "transposed", "sliced", "reversed", "channels_last_memory")
 
 
+#: Case fields that results documents and catalogs written before them do not have, with their
+#: defaults: ``as_dict`` leaves a field out at its default, so those documents' cases read the same.
+_LATER_FIELDS = {"residual_bias": False}
+
+
 @dataclass(frozen=True)
 class Case:
     """A case of the catalog. Every field is part of the id, so the id reproduces the case.
@@ -43,6 +48,8 @@ class Case:
     mode : "train" | "eval" (eval: batch/instance norm with running statistics).
     running : train mode also updates running statistics.
     dy : the upstream gradient's kind, "normal" or "ones" (part of the id only when not "normal").
+    residual_bias : a fused residual-add op also adds a bias of the normalized shape to the residual
+        stream, h = x + residual + residual_bias (part of the id, ``rbias``, only when True).
     running_values : the running statistics' kind, "near" (near the batch's own), "far", "wide"
         (outside the storage format's range) or "at_mean" (x equal to the running mean); part of
         the id only when not "near".
@@ -65,6 +72,7 @@ class Case:
     norm_ndim: int = 0          # layer/RMS norm only
     dy: str = "normal"
     running_values: str = "near"
+    residual_bias: bool = False
     tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
@@ -76,6 +84,8 @@ class Case:
         if self.norm_ndim:
             parts.append(f"norm_ndim={self.norm_ndim}")
         parts.append(self.values)
+        if self.residual_bias:
+            parts.append("rbias")
         if self.dy != "normal":
             parts.append(f"dy={self.dy}")
         parts += [f"w={self.weight}", f"b={self.bias}", f"eps={self.eps:g}", self.mode]
@@ -120,6 +130,9 @@ class Case:
 
     def as_dict(self) -> dict:
         d = asdict(self)
+        for name, default in _LATER_FIELDS.items():
+            if d[name] == default:  # fields added after results documents existed: written only when set
+                del d[name]
         d["shape"] = list(self.shape)
         d["id"] = self.id
         return d

@@ -1,7 +1,8 @@
 """What each op means for the harness at call time: the oracle call and the kernel's keyword arguments.
 
 Inputs are a dict of arrays: x, dy, weight, bias, running_mean, running_var
-(None where a case has none). The oracle sees them upcast to float64 after
+(None where a case has none), and residual, residual_bias, dh for a fused residual-add op (the
+oracle calls get its oracle view, conformance.ops.residual: x is the h normalized). The oracle sees them upcast to float64 after
 they were rounded to the kernel's dtypes, so a comparison measures the
 kernel's own error, not the rounding of its inputs. Everything op-specific
 comes from the op's description (conformance.ops.get(case.op)).
@@ -96,6 +97,10 @@ def kernel_kwargs(case: Case, entry: str, inp: dict[str, Any], saved: dict[str, 
         kw["bias"] = inp.get("bias")
     if entry in ("backward", "backward_eval"):
         kw["dy"] = inp["dy"]
+    if spec.residual:  # backward also gets h, the forward's stored residual stream, with the saved statistics
+        kw.update(residual=inp["residual"], residual_bias=inp.get("residual_bias"))
+        if entry == "backward":
+            kw["dh"] = inp["dh"]
     if spec.has_eval:
         kw["training"] = entry in ("forward", "backward")
         if entry in ("forward_eval", "backward_eval") or (entry == "forward" and case.running):

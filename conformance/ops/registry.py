@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from . import batch_norm, group_norm, instance_norm, layer_norm, rms_norm
+from . import add_layer_norm, add_rms_norm, batch_norm, group_norm, instance_norm, layer_norm, rms_norm
 from .spec import OpSpec
 
 __all__ = ["OPS", "SPECS", "get", "find", "with_eval"]
@@ -14,6 +14,8 @@ SPECS: dict[str, OpSpec] = {s.name: s for s in (
     group_norm.SPEC,
     instance_norm.SPEC,
     rms_norm.SPEC,
+    add_layer_norm.SPEC,
+    add_rms_norm.SPEC,
 )}
 OPS: tuple[str, ...] = tuple(SPECS)
 

@@ -17,4 +17,5 @@ SPEC = OpSpec(
     centered=False,
     default_bias="none",
     param_kinds=(("none", "none"), ("zero", "none"), ("negative", "none"), ("ones", "none"), ("random", "random")),
+    weight_offsets=True,
 )

@@ -13,7 +13,7 @@ from typing import Any, Callable, Protocol
 
 from .axes import View
 
-__all__ = ["OpSpec", "CatalogShapes", "Axes", "STATISTICS", "SAVED_FORMS", "GRADS", "RUNNING_OUTPUTS",
+__all__ = ["OpSpec", "RESIDUAL_OUTPUTS", "H_FORMATS", "CatalogShapes", "Axes", "STATISTICS", "SAVED_FORMS", "GRADS", "RUNNING_OUTPUTS",
            "RUNNING_MODES", "VALUE_KINDS", "PARAM_KINDS", "RANGE_VALUE_KINDS", "TINY_EPS", "TINY_EPS_VALUES",
            "DY_KINDS", "RUNNING_VALUE_KINDS"]
 
@@ -24,6 +24,13 @@ SAVED_FORMS = ("rstd", "var", "var_unbiased", "std")
 STATISTICS = ("mean",) + SAVED_FORMS
 GRADS = ("dx", "dweight", "dbias")
 RUNNING_OUTPUTS = ("running_mean", "running_var")
+#: What a fused residual-add op returns besides y and its statistics: h = x + residual (+ residual
+#: bias), the residual stream passed on to the next layer.
+RESIDUAL_OUTPUTS = ("h",)
+#: Where a fused residual-add op's h is when it is normalized: rounded to the storage format first
+#: ("storage": most fused kernels, which store h anyway: common practice) or as the accumulation
+#: format holds the sum ("accumulate").
+H_FORMATS = ("storage", "accumulate")
 
 #: (mode, running, words): the kinds of call of an op with running statistics, as the report names
 #: a kind that no case ran.
@@ -124,6 +131,12 @@ class OpSpec:
     dy_kinds : the upstream-gradient kinds of its long parameter-reduction cases, besides "normal".
     running_value_kinds : the running-statistic kinds of its eval range cases, besides "near"
         (read only where has_eval).
+    residual : a fused residual add before the norm: forward takes ``residual`` (and, in the cases
+        that have one, ``residual_bias``) besides x and returns h = x + residual (+ residual_bias);
+        backward takes dh, the gradient along the residual stream, and dx (= dresidual) includes
+        it. ``forward``/``backward`` are then the normalization of h (conformance.ops.residual).
+    weight_offsets : the op admits Conventions.weight_offset (scale by offset + weight, the weight
+        stored centred at zero: RMS norm's variant in some models).
     """
 
     name: str
@@ -142,6 +155,8 @@ class OpSpec:
     range_value_kinds: tuple[str, ...] = RANGE_VALUE_KINDS
     dy_kinds: tuple[str, ...] = DY_KINDS[1:]
     running_value_kinds: tuple[str, ...] = RUNNING_VALUE_KINDS[1:]
+    residual: bool = False
+    weight_offsets: bool = False
 
     @property
     def saved(self) -> tuple[str, ...]:
@@ -159,7 +174,11 @@ class OpSpec:
     @property
     def outputs(self) -> tuple[str, ...]:
         """Every output a kernel of this op may be checked on."""
-        return ("y",) + self.saved + self.running_outputs + self.grads
+        return ("y",) + self.residual_outputs + self.saved + self.running_outputs + self.grads
+
+    @property
+    def residual_outputs(self) -> tuple[str, ...]:
+        return RESIDUAL_OUTPUTS if self.residual else ()
 
     @property
     def entry_points(self) -> tuple[str, ...]:

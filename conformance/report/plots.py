@@ -27,7 +27,7 @@ __all__ = ["Plot", "all_plots", "ulp_distribution", "error_vs_length", "budget_u
 #: the non-finite ones: counted, and drawn at the edge or left out with a note.
 _CAP = 1e200
 
-_ORDER = {"y": 0, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
+_ORDER = {"y": 0, "h": 0.5, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
           "running_var": 4, "dx": 5, "dweight": 6, "dbias": 7}
 
 

@@ -111,18 +111,23 @@ def _changed(before: np.ndarray, after: np.ndarray) -> bool:
     return not np.array_equal(np.ascontiguousarray(before).view(view), np.ascontiguousarray(after).view(view))
 
 
-def given_saved(kernel: Kernel, case: Case, oracle_fwd) -> dict[str, np.ndarray]:
+def given_saved(kernel: Kernel, case: Case, oracle_fwd, view: dict[str, Any] | None = None) -> dict[str, np.ndarray]:
     """The saved statistics a training backward is given when the kernel has no forward to take them
-    from: the oracle's, rounded to the params dtype (empty when it has a forward or saves nothing)."""
-    if case.mode != "train" or not kernel.conventions.saved or kernel.forward is not None:
+    from: the oracle's, rounded to the params dtype, and a fused residual-add op's stored h (from the
+    oracle ``view``); empty when it has a forward or saves nothing."""
+    if case.mode != "train" or kernel.forward is not None:
         return {}
     from ..dtypes import round_to
 
     prec = kernel.precision_for(case.dtype)
-    return {s: round_to(ops.saved_form(s, oracle_fwd, case), output_dtype(s, prec)) for s in kernel.conventions.saved}
+    out = {s: round_to(ops.saved_form(s, oracle_fwd, case), output_dtype(s, prec)) for s in kernel.conventions.saved}
+    if view is not None and ops.get(case.op).residual:
+        out["h"] = ops.stored_h(case, view)
+    return out
 
 
-def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd) -> tuple[dict[str, Any], list[str]]:
+def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd,
+                    view: dict[str, Any] | None = None) -> tuple[dict[str, Any], list[str]]:
     """Call the kernel's entry points for the case; return its outputs by name and the inputs it modified."""
     conv = kernel.conventions
     train = case.mode == "train"
@@ -148,11 +153,13 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd)
             got["running_var"] = run_inp["running_var"]
         modified += [k for k in before if _changed(before[k], run_inp[k])]
         out.update(got)
-        saved = {s: got[s] for s in conv.saved if s in got} if train else {}
+        saved = {s: got[s] for s in (*conv.saved, *ops.get(case.op).residual_outputs) if s in got} if train else {}
     bwd = "backward" if train else "backward_eval"
     if getattr(kernel, bwd) is not None:
         if train and not saved:
-            saved = given_saved(kernel, case, oracle_fwd)
+            saved = given_saved(kernel, case, oracle_fwd, view)
+        if train and ops.get(case.op).residual and "h" not in saved and view is not None:
+            saved = {**saved, "h": ops.stored_h(case, view)}  # a forward that does not return h
         before = _snapshot(inp)
         res = _call(kernel, bwd, ops.kernel_kwargs(case, bwd, inp, saved=saved))
         out.update(_named(res, kernel.grads, bwd))
@@ -202,9 +209,11 @@ def oracle_expected(kernel: Kernel, case: Case, inp64: dict[str, Any], fwd, name
     harness checks them: the forward outputs, then dx, dweight (with a weight), dbias (with a bias)."""
     conv = kernel.conventions
     expected = ops.forward_outputs(case, conv, fwd, kernel.outputs, kernel.updates_running)
+    if "h" in names:
+        expected["h"] = inp64["h"]
     if any(k in names for k in ops.GRADS):
         bwd = ops.oracle_backward(case, conv, inp64)
-        expected["dx"] = bwd.dx
+        expected["dx"] = bwd.dx if inp64.get("dh") is None else bwd.dx + inp64["dh"]
         if case.weight != "none":
             expected["dweight"] = bwd.dweight
         if case.bias != "none":
@@ -246,6 +255,26 @@ def judged(case: Case, results: list, modified: list[str] = (), **timing: float)
                       outputs=[r.to_dict() for r in results], modified_inputs=list(modified), **timing)
 
 
+def _normalized_h(kernel: Kernel, case: Case, view: dict[str, Any], fwd, raw: dict[str, Any]):
+    """(view, fwd) with the kernel's own stored h as what was normalized, when it is declared to normalize
+    h rounded to the storage format and returned an h of the case's shape that differs from the oracle's
+    rounding (a double rounding through the accumulation format, or a wrong h, which h's own check
+    reports): y and the statistics are then checked as the normalization of the h the kernel passed on."""
+    if not ops.get(case.op).residual or kernel.conventions.h_format != "storage" or raw.get("h") is None:
+        return view, fwd
+    try:
+        hk = as_numpy(raw["h"])
+    except Exception:  # unreadable: the comparison of h reports it
+        return view, fwd
+    if hk.shape != tuple(case.shape) or hk.dtype != dtypes.dtype_of(case.dtype):
+        return view, fwd
+    hk = hk.astype(np.float64)
+    if np.array_equal(hk, view["x"], equal_nan=True):
+        return view, fwd
+    new = dict(view, x=hk)
+    return new, ops.oracle_forward(case, kernel.conventions, new)
+
+
 def _execute(kernel: Kernel, case: Case, seed: int,
              overrides: Mapping[str, tuple[float, float]] | None) -> CaseResult:
     t0 = time.perf_counter()
@@ -255,8 +284,9 @@ def _execute(kernel: Kernel, case: Case, seed: int,
     conv = kernel.conventions
     prec = kernel.precision_for(case.dtype)
     inp = make_inputs(case, prec, seed)
-    inp64 = {k: (None if v is None else np.asarray(v).astype(np.float64)) for k, v in inp.items()}
-    beyond = case_beyond_range(case, prec, inp64)
+    inp64 = ops.oracle_view(case, conv, {k: (None if v is None else np.asarray(v).astype(np.float64))
+                                         for k, v in inp.items()})
+    beyond = case_beyond_range(case, prec, ops.base_inputs(inp64))
     if beyond:  # not a correct kernel's failure: the declared precision does not promise this range
         return CaseResult(id=case.id, case=case.as_dict(), status="skipped", message=beyond,
                           duration_s=time.perf_counter() - t0)
@@ -267,7 +297,7 @@ def _execute(kernel: Kernel, case: Case, seed: int,
 
     t_k = time.perf_counter()
     try:
-        raw, modified = _kernel_outputs(kernel, case, inp, fwd)
+        raw, modified = _kernel_outputs(kernel, case, inp, fwd, inp64)
     except KernelCallError as e:
         return CaseResult(id=case.id, case=case.as_dict(), status="error", message=str(e),
                           duration_s=time.perf_counter() - t0)
@@ -277,6 +307,7 @@ def _execute(kernel: Kernel, case: Case, seed: int,
     kernel_s = time.perf_counter() - t_k
 
     t_or = time.perf_counter()
+    inp64, fwd = _normalized_h(kernel, case, inp64, fwd, raw)
     expected = oracle_expected(kernel, case, inp64, fwd, tuple(raw))
     oracle_s += time.perf_counter() - t_or
     bounds = case_bounds(case, prec, conv, inp64, expected, overrides)

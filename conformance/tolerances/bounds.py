@@ -48,19 +48,19 @@ from .grouping import Grouping, grouping
 from .stats import ELEM, StatModel, batch_stats, eta, fixed_stats
 from .summation import capped, gamma
 
-__all__ = ["derive_bounds", "output_dtype", "OUTPUTS", "STAT_OUTPUTS"]
+__all__ = ["derive_bounds", "finish_bound", "output_dtype", "OUTPUTS", "STAT_OUTPUTS"]
 
 STAT_OUTPUTS = ("mean", "rstd", "var", "var_unbiased", "std")
-OUTPUTS = ("y",) + STAT_OUTPUTS + ("running_mean", "running_var", "dx", "dweight", "dbias")
+OUTPUTS = ("y", "h") + STAT_OUTPUTS + ("running_mean", "running_var", "dx", "dweight", "dbias")
 _INPUTS = ("x", "dy", "weight", "bias", "running_mean", "running_var")
 
 
 def output_dtype(output: str, precision: Precision) -> str:
-    """The format an output is stored in: storage for y and dx, params for statistics and parameter gradients."""
+    """The format an output is stored in: storage for y, h and dx, params for statistics and parameter gradients."""
     if output not in OUTPUTS:
         raise ValueError(f"output is {output!r}, expected one of {', '.join(OUTPUTS)}")
     p = precision.resolved()
-    if output in ("y", "dx"):
+    if output in ("y", "h", "dx"):
         return p.storage
     return p.saved if output in STAT_OUTPUTS else p.params
 
@@ -79,7 +79,8 @@ class _Context:
     """Everything the per-output bounds share for one case."""
 
     def __init__(self, case: Case, precision: Precision, conventions: Conventions,
-                 inputs64: dict[str, np.ndarray | None]):
+                 inputs64: dict[str, np.ndarray | None],
+                 input_errors: dict[str, np.ndarray] | None = None):
         self.case = case
         self.p = precision.resolved()
         self.conv = conventions
@@ -109,6 +110,11 @@ class _Context:
         self._stats: dict[tuple[float, str], StatModel] = {}
         self._cache: dict[str, np.ndarray | float] = {}  # flushed inputs by name, and the range used
         self.accepts: dict[str, tuple[Accept, ...]] = {}
+        # Declared input errors (a residual add's rounding, a weight offset's): |input^ - input| elementwise,
+        # propagated as a flushed input's is; x and dy in the view, weight and bias as parameters.
+        self.errs = {k: (self.grp.view(np.asarray(v, np.float64)) if k in ("x", "dy") else self.grp.param_in(
+            np.asarray(v, np.float64))) for k, v in (input_errors or {}).items() if v is not None}
+        self.perturbed = self.flush or bool(self.errs)
 
     def floor(self, fmt: str) -> float:
         """The absolute error of one rounding into ``fmt`` near zero: half its smallest subnormal
@@ -120,8 +126,9 @@ class _Context:
         """|input| where a kernel that flushes subnormals reads the input as zero (below the smallest
         normal value of its own format or of the accumulation format), else 0; 0.0 when subnormals
         are kept (the view's shape for x and dy, the parameters' for weight and bias)."""
+        extra = self.errs.get(name)
         if not self.flush:
-            return 0.0
+            return 0.0 if extra is None else extra
         if name not in self._cache:
             fmt = self.p.storage if name in ("x", "dy") else self.p.params
             thr = max(float(dtypes.finfo(fmt).smallest_normal), float(dtypes.finfo(self.p.accumulate).smallest_normal))
@@ -131,7 +138,7 @@ class _Context:
             else:
                 aa = np.abs(a)
                 self._cache[name] = np.where(np.isfinite(aa) & (aa < thr), aa, 0.0)
-        return self._cache[name]
+        return self._cache[name] if extra is None else self._cache[name] + extra
 
     def model_for(self, output: str) -> str:
         return self.p.summation_for(output)
@@ -311,7 +318,7 @@ def _y(ctx: _Context, expected: np.ndarray):
     with np.errstate(invalid="ignore", over="ignore"):
         d = np.abs(x - st.mu)
         fl = (w * r_up * ctx.flushed("x") + r_up * d * ctx.flushed("weight") + ctx.flushed("bias")
-              if ctx.flush else 0.0)  # inputs read as zero: x moves by |x|, weight by |w|, bias by |b|
+              if ctx.perturbed else 0.0)  # inputs read as zero: x moves by |x|, weight by |w|, bias by |b|
         if ctx.train:
             # The mean's own error B_mu >= 2 u_a |mu| + gamma_n mean|x| is of the size of the folded form's
             # roundings, so training keeps one bound for both forms.
@@ -347,7 +354,7 @@ def _y(ctx: _Context, expected: np.ndarray):
     else:
         f = ("|w| (r+dr) B_mu + |w| |x-mu| dr + u_o (3 |w| (r+dr) (|x-mu| + B_mu) + |b| + 2|y|)"
              " + u_cv |w| (r+dr) |x| + final u_s |y|")
-    if ctx.flush:
+    if ctx.perturbed:
         f += " + |w| (r+dr) |x flushed| + (r+dr) |x-mu| |w flushed| + |b flushed|"
     extra = {} if ratio is None else {"folded_over_centred": ratio}
     return grp.unview(vals), f + f_form + "; " + ctx.stats_text(st, model), ctx.terms(st, u_o, **extra)
@@ -487,8 +494,8 @@ def _dx(ctx: _Context, expected: np.ndarray):
     r_up = st.r + dr
     model = ctx.model_for("dx")
     # Inputs a flushing kernel reads as zero: g = dy w moves by |w| d_dy + |dy| d_w (0 when kept).
-    dg = ctx.w_abs() * ctx.flushed("dy") + np.abs(dy) * ctx.flushed("weight") if ctx.flush else 0.0
-    fl_txt = " + flushed inputs' terms" if ctx.flush else ""
+    dg = ctx.w_abs() * ctx.flushed("dy") + np.abs(dy) * ctx.flushed("weight") if ctx.perturbed else 0.0
+    fl_txt = " + flushed inputs' terms" if ctx.perturbed else ""
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         if not ctx.train:
             pre = np.abs(g) * dr + 2.0 * u_o * r_up * np.abs(g) + 2.0 * ctx.eta_a + r_up * dg
@@ -520,7 +527,7 @@ def _dx(ctx: _Context, expected: np.ndarray):
             pre = pre + beta_up * rb * rb * np.abs(m1)
         pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
                            + 2.0 * dx) + 6.0 * ctx.eta_a
-        if ctx.flush:
+        if ctx.perturbed:
             # x read as zero moves xhat by r |x| (and m2 with it); g moves by dg (and m1, m2 with it).
             fx = ctx.flushed("x")
             dm2_f = r_up * grp.gmean(np.abs(g) * fx) + grp.gmean(dg * np.abs(xhat))
@@ -577,7 +584,7 @@ def _dweight(ctx: _Context, expected: np.ndarray):
             if outer else per
         sxh = grp.psum(np.abs(dy * xc) * st.r)
         pre = per + (gam + u_w + 2.0 * ctx.u_a) * sxh + u_w * dw + m * ctx.eta_a
-        if ctx.flush:  # dy and x read as zero where subnormal: each term dy xhat moves by d_dy |xhat| + |dy| r d_x
+        if ctx.perturbed:  # dy and x read as zero where subnormal: each term dy xhat moves by d_dy |xhat| + |dy| r d_x
             pre = pre + grp.psum(ctx.flushed("dy") * np.abs(xc) * (st.r + st.dr)
                                  + np.abs(dy) * (st.r + st.dr) * ctx.flushed("x"))
         vals = _final(pre, dw, ctx.u_p, ctx.eta_p)
@@ -587,7 +594,7 @@ def _dweight(ctx: _Context, expected: np.ndarray):
 
     f = ("sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_w + 2u_a) sum_m |dy xhat|"
          " + u_w |dweight| + final u_p |dweight|, sum_gm over the elements of group g in the parameter's sum,"
-         " u_w = accumulation of dweight" + (" + flushed inputs' terms" if ctx.flush else "") + "; "
+         " u_w = accumulation of dweight" + (" + flushed inputs' terms" if ctx.perturbed else "") + "; "
          + ctx.gamma_text("m", model) + "; " + ctx.stats_text(st))
     return grp.param_out(vals), f, ctx.terms(st, u_w, m=float(m), gamma_m=gamma(m, u_w, model, ctx.lam),
                                              sum_abs_dy_xhat=_finite_max(sxh))
@@ -604,12 +611,12 @@ def _dbias(ctx: _Context, expected: np.ndarray):
     with np.errstate(invalid="ignore", over="ignore"):
         s = grp.psum(np.abs(ctx.dyv()))
         pre = gam * s + u_b * db
-        if ctx.flush:
+        if ctx.perturbed:
             pre = pre + grp.psum(ctx.flushed("dy"))
         vals = _final(pre, db, ctx.u_p, ctx.eta_p)
     ctx.accepts["dbias"] = ranges.sum_overflow_accepts(grp.param_out(s), ctx.p.accumulate_for("dbias"))
     f = ("gamma_m sum_m |dy| + u_b |dbias| + final u_p |dbias|, u_b = accumulation of dbias"
-         + (" + sum of flushed |dy|" if ctx.flush else "") + "; " + ctx.gamma_text("m", model))
+         + (" + sum of flushed |dy|" if ctx.perturbed else "") + "; " + ctx.gamma_text("m", model))
     return grp.param_out(vals), f, ctx.terms(st, u_b, m=float(m), gamma_m=gamma(m, u_b, model, ctx.lam),
                                              sum_abs_dy=_finite_max(s))
 
@@ -621,7 +628,8 @@ _BUILDERS.update({s: _stat_output(s) for s in STAT_OUTPUTS})
 
 def derive_bounds(case: Case, precision: Precision, conventions: Conventions,
                   inputs64: dict[str, np.ndarray | None],
-                  expected: dict[str, np.ndarray]) -> dict[str, Bound]:
+                  expected: dict[str, np.ndarray],
+                  input_errors: dict[str, np.ndarray] | None = None) -> dict[str, Bound]:
     """One derived Bound per output in ``expected`` (see the module docstring and docs/tolerances.md).
 
     Parameters
@@ -632,6 +640,9 @@ def derive_bounds(case: Case, precision: Precision, conventions: Conventions,
     inputs64 : x, dy, weight, bias, running_mean, running_var as float64, exactly the values the kernel
         received, in the logical layout of ``case.shape`` (None where absent).
     expected : the oracle's values of the outputs to check, by name.
+    input_errors : declared errors of inputs as the kernel uses them, |input^ - input| elementwise by
+        input name (x, dy, weight, bias), propagated as a flushed input's (a residual add's and a
+        weight offset's roundings: conformance/tolerances/residual.py).
 
     Returns
     -------
@@ -640,32 +651,48 @@ def derive_bounds(case: Case, precision: Precision, conventions: Conventions,
     """
     if not isinstance(expected, dict) or not expected:
         raise ValueError(f"expected is {type(expected).__name__}, expected a non-empty dict of oracle outputs")
+    if ops.get(case.op).residual or conventions.weight_offset:
+        from .residual import derive_fused_bounds
+
+        return derive_fused_bounds(case, precision, conventions, inputs64, expected, _derive)
+    return _derive(case, precision, conventions, inputs64, expected, input_errors)
+
+
+def _derive(case: Case, precision: Precision, conventions: Conventions, inputs64: dict[str, np.ndarray | None],
+            expected: dict[str, np.ndarray], input_errors: dict[str, np.ndarray] | None) -> dict[str, Bound]:
     unknown = [k for k in expected if k not in _BUILDERS]
     if unknown:
         raise ValueError(f"expected has outputs {unknown}, expected names from {', '.join(OUTPUTS)}")
     bad = [k for k in inputs64 if k not in _INPUTS]
     if bad:
         raise ValueError(f"inputs64 has keys {bad}, expected names from {', '.join(_INPUTS)}")
-    ctx = _Context(case, precision, conventions, inputs64)
+    ctx = _Context(case, precision, conventions, inputs64, input_errors)
     out: dict[str, Bound] = {}
     for name, exp in expected.items():
         e = np.asarray(exp, dtype=np.float64)
         vals, formula, terms = _BUILDERS[name](ctx, e)
-        vals = np.asarray(vals, dtype=np.float64)
-        if vals.shape != e.shape:
-            vals = np.broadcast_to(vals, e.shape) if vals.size == 1 else vals.reshape(e.shape)
-        fin = np.isfinite(e)
-        bad_b = fin & ~np.isfinite(vals)
-        vals = np.where(fin, vals, 0.0)
-        if bad_b.any():  # overflow inside the bound itself (values near float64's range): no bound
-            vals = np.where(bad_b, np.finfo(np.float64).max, vals)
-        terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
-        scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
-        terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
-        accept = ctx.accepts.get(name, ()) + ranges.overflow_accepts(e, vals, output_dtype(name, ctx.p),
-                                                                     ctx.p.overflow)
-        if accept:
-            terms["accept_elements"] = float(sum(int(np.count_nonzero(a.mask)) for a in accept))
-        out[name] = Bound(output=name, values=np.ascontiguousarray(vals), formula=formula, terms=terms,
-                          accept=accept)
+        out[name] = finish_bound(name, e, vals, formula, terms, ctx.accepts.get(name, ()), ctx.p)
     return out
+
+
+def finish_bound(name: str, e: np.ndarray, vals, formula: str, terms: dict[str, float],
+                 accepts: tuple[Accept, ...], precision: Precision) -> Bound:
+    """The Bound of output ``name`` from its elementwise values: 0 where the oracle's value is not
+    finite, float64's largest value where the bound itself overflowed, and the accepted alternatives
+    (``accepts`` and the overflow convention's, ranges.py)."""
+    vals = np.asarray(vals, dtype=np.float64)
+    if vals.shape != e.shape:
+        vals = np.broadcast_to(vals, e.shape) if vals.size == 1 else vals.reshape(e.shape)
+    fin = np.isfinite(e)
+    bad_b = fin & ~np.isfinite(vals)
+    vals = np.where(fin, vals, 0.0)
+    if bad_b.any():  # overflow inside the bound itself (values near float64's range): no bound
+        vals = np.where(bad_b, np.finfo(np.float64).max, vals)
+    terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
+    scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
+    terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
+    p = precision.resolved()
+    accept = tuple(accepts) + ranges.overflow_accepts(e, vals, output_dtype(name, p), p.overflow)
+    if accept:
+        terms["accept_elements"] = float(sum(int(np.count_nonzero(a.mask)) for a in accept))
+    return Bound(output=name, values=np.ascontiguousarray(vals), formula=formula, terms=terms, accept=accept)

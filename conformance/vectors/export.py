@@ -38,7 +38,9 @@ __all__ = ["target_kernel", "export_vectors", "memory_layout", "EXPORT_CAUTION"]
 EXPORT_CAUTION = ("These vectors are evidence on the cases they hold: scoring a target's outputs against them "
                   "says how that target did on these inputs, not that it is correct elsewhere. " + CAUTION)
 
-_INPUT_ORDER = ("x", "dy", "weight", "bias", "running_mean", "running_var")
+#: Inputs in the storage format (the others are in the params format, saved statistics in the saved one).
+STORAGE_INPUTS = ("x", "dy", "residual", "dh", "h")
+_INPUT_ORDER = ("x", "dy", "weight", "bias", "running_mean", "running_var", "residual", "residual_bias", "dh")
 
 
 def _runs_elsewhere(entry: str) -> Callable[..., Any]:
@@ -120,8 +122,9 @@ def _case_entry(w: _Writer, kernel: Kernel, case: Case, seed: int, dirname: str,
     conv = kernel.conventions
     prec = kernel.precision_for(case.dtype)
     inp = make_inputs(case, prec, seed)
-    inp64 = {k: (None if v is None else np.asarray(v).astype(np.float64)) for k, v in inp.items()}
-    beyond = case_beyond_range(case, prec, inp64)
+    inp64 = ops.oracle_view(case, conv, {k: (None if v is None else np.asarray(v).astype(np.float64))
+                                         for k, v in inp.items()})
+    beyond = case_beyond_range(case, prec, ops.base_inputs(inp64))
     if beyond:  # as check: the declared precision does not promise this range, so no vectors for it
         entry["skipped"] = beyond
         return entry
@@ -129,13 +132,13 @@ def _case_entry(w: _Writer, kernel: Kernel, case: Case, seed: int, dirname: str,
     names = declared_outputs(kernel, case)
     expected = oracle_expected(kernel, case, inp64, fwd, names)
     bounds = case_bounds(case, prec, conv, inp64, expected, overrides)
-    arrays = {k: inp[k] for k in _INPUT_ORDER if inp[k] is not None}
-    arrays.update(given_saved(kernel, case, fwd) if any(n in ops.GRADS for n in names) else {})
+    arrays = {k: inp[k] for k in _INPUT_ORDER if inp.get(k) is not None}
+    arrays.update(given_saved(kernel, case, fwd, inp64) if any(n in ops.GRADS for n in names) else {})
     train = case.mode == "train"
     base = f"cases/{dirname}"
     inputs = []
     for name, a in arrays.items():
-        fmt = prec.storage if name in ("x", "dy") else prec.params
+        fmt = prec.storage if name in STORAGE_INPUTS else prec.params
         strides, offset, span = memory_layout(np.asarray(a))
         ref = w.npy(f"{base}/inputs/{name}.npy", encode(a, fmt))
         inputs.append({"name": name, "format": fmt, "npy_dtype": stored_dtype(fmt).str, "shape": list(a.shape),

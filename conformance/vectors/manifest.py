@@ -50,7 +50,8 @@ INDEX = "index.txt"
 MAX_MANIFEST = 64 << 20
 #: The inputs a case may hold: the kernel's arrays, then the saved statistics a backward-only
 #: declaration is given (the oracle's, rounded to the params format, as `refnorm check` gives them).
-INPUTS = ("x", "dy", "weight", "bias", "running_mean", "running_var") + ops.STATISTICS
+INPUTS = ("x", "dy", "weight", "bias", "running_mean", "running_var", "residual", "residual_bias", "dh",
+          "h") + ops.STATISTICS
 _MAX_FILE = 1 << 31
 
 _HEX = "^[0-9a-f]{64}$"
