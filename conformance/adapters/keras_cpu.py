@@ -65,7 +65,7 @@ from ..arrays import as_numpy, to_tensorflow
 from ..kernel import Conventions, Kernel, KernelError, Precision
 from . import missing_library
 
-__all__ = ["batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm"]
+__all__ = ["batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm", "add_layer_norm", "add_rms_norm"]
 
 DTYPES = ("float64", "float32", "float16", "bfloat16")
 
@@ -323,3 +323,34 @@ def rms_norm() -> Kernel:
 
 def _notes(keras, tf, text: str) -> str:
     return f"keras {keras.__version__} on tensorflow {tf.__version__}: {text}"
+
+
+def _tf_add():
+    """a + b (+ c) with TensorFlow's adds, in a's format (a residual bias in another format is added in
+    float32 and the sum rounded once to a's)."""
+    tf, _ = _libs()
+
+    def add(a, b, c=None):
+        out = tf.add(to_tensorflow(as_numpy(a)), to_tensorflow(as_numpy(b)))
+        if c is not None:
+            tc = to_tensorflow(as_numpy(c))
+            out = tf.cast(tf.add(tf.cast(out, tf.float32), tf.cast(tc, tf.float32)), out.dtype) \
+                if tc.dtype != out.dtype else tf.add(out, tc)
+        return as_numpy(out)
+
+    return add
+
+
+def add_layer_norm() -> Kernel:
+    """x + residual (+ residual_bias) with TensorFlow's adds, then keras.layers.LayerNormalization
+    (conformance.adapters.residual)."""
+    from .residual import compose
+
+    return compose(layer_norm(), "add_layer_norm", _tf_add(), "TensorFlow")
+
+
+def add_rms_norm() -> Kernel:
+    """x + residual (+ residual_bias) with TensorFlow's adds, then keras.layers.RMSNormalization."""
+    from .residual import compose
+
+    return compose(rms_norm(), "add_rms_norm", _tf_add(), "TensorFlow")

@@ -90,7 +90,7 @@ from ..kernel import Kernel
 from . import torch_device as _dev
 
 __all__ = [
-    "batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm",
+    "batch_norm", "layer_norm", "group_norm", "instance_norm", "rms_norm", "add_layer_norm", "add_rms_norm",
     "batch_norm_mixed", "layer_norm_mixed", "group_norm_mixed", "instance_norm_mixed",
 ]
 
@@ -140,3 +140,17 @@ def group_norm_mixed() -> Kernel:
 def instance_norm_mixed() -> Kernel:
     """instance_norm with float32 weight, bias and running statistics for float16/bfloat16 x."""
     return instance_norm(params="float32")
+
+
+def add_layer_norm(params: str = "storage") -> Kernel:
+    """x + residual (+ residual_bias) with torch's adds, then torch's layer norm (conformance.adapters.torch_fused)."""
+    from .torch_fused import add_layer_norm as make
+
+    return make(params=params)
+
+
+def add_rms_norm(params: str = "storage") -> Kernel:
+    """x + residual (+ residual_bias) with torch's adds, then F.rms_norm (conformance.adapters.torch_fused)."""
+    from .torch_fused import add_rms_norm as make
+
+    return make(params=params)
