@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from ._features import feature_plan
-from ._validate import as_float64, check_nonempty, check_same_shape
+from ._validate import as_float64, check_nonempty, check_same_shape, describe
 from .errors import RefnormError
 from .layer_norm import layer_norm_backward, layer_norm_forward
 from .rms_norm import rms_norm_backward, rms_norm_forward
@@ -78,20 +78,28 @@ def _two_sum(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return s, e
 
 
+#: The formats h may be rounded to (IEEE binary16/32/64; bfloat16 and the OCP float8 formats of ml_dtypes).
+H_FORMATS = ("float16", "float32", "float64", "bfloat16", "float8_e4m3fn", "float8_e5m2")
+
+
+def _format_dtype(fmt: Any) -> np.dtype:
+    if not isinstance(fmt, str) or fmt not in H_FORMATS:
+        raise RefnormError(f"h_format is {describe(fmt)}, expected None (normalize the exact sum) or one of "
+                           f"{', '.join(H_FORMATS)}")
+    if fmt in ("float16", "float32", "float64"):
+        return np.dtype(fmt)
+    import ml_dtypes
+
+    return np.dtype(getattr(ml_dtypes, fmt))
+
+
 def _round_pair(hi: np.ndarray, lo: np.ndarray, fmt: str) -> np.ndarray:
     """hi + lo (|lo| <= half an ulp of hi) rounded once to ``fmt``, ties to even.
 
     Rounding hi alone is right unless hi is exactly halfway between two numbers of the format
     and lo breaks the tie: then the neighbour on lo's side is the correctly rounded result.
     """
-    from ._validate import _finfo  # ml_dtypes formats by name
-
-    try:
-        dt = np.dtype(fmt) if fmt in ("float16", "float32", "float64") else np.dtype(getattr(__import__("ml_dtypes"), fmt))
-        _finfo(dt)
-    except (TypeError, AttributeError, ImportError):
-        raise RefnormError(f"h_format is {fmt!r}, expected a floating-point format name such as 'bfloat16', "
-                           "'float16', 'float32', 'float64' or an ml_dtypes float8 name, or None") from None
+    dt = _format_dtype(fmt)
     if dt == np.float64:
         return hi.copy()
     with np.errstate(over="ignore", invalid="ignore"):
@@ -104,14 +112,22 @@ def _round_pair(hi: np.ndarray, lo: np.ndarray, fmt: str) -> np.ndarray:
     return q
 
 
-def residual_stream(x: Any, residual: Any, residual_bias: Any = None, *, h_format: str | None = None,
-                    param_shape: tuple[int, ...] | None = None) -> tuple[np.ndarray, np.ndarray]:
+def residual_stream(x: Any, residual: Any, residual_bias: Any = None, *,
+                    h_format: str | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(h, h rounded to ``h_format``) with h = x + residual (+ residual_bias) exact.
 
-    x, residual : the same shape. residual_bias : broadcast over the trailing axes
-    (``param_shape``, the normalized shape). h is returned as the float64 nearest the exact sum
-    (exact for two terms); the rounded h is the exact sum rounded once (None: h itself).
+    x, residual : the same shape. residual_bias : of x's trailing shape, broadcast over the leading
+    axes. h is returned as the float64 nearest the exact sum (exact for two terms); the rounded h is
+    the exact sum rounded once (h_format None: h itself).
     """
+    return _stream(x, residual, residual_bias, h_format, None)
+
+
+def _stream(x: Any, residual: Any, residual_bias: Any, h_format: str | None,
+            param_shape: tuple[int, ...] | None) -> tuple[np.ndarray, np.ndarray]:
+    """residual_stream, with residual_bias required to have ``param_shape`` (the normalized shape)."""
+    if h_format is not None:
+        _format_dtype(h_format)
     xf = as_float64("x", x)
     rf = as_float64("residual", residual)
     check_same_shape("residual", rf, "x", xf)
@@ -121,7 +137,7 @@ def residual_stream(x: Any, residual: Any, residual_bias: Any = None, *, h_forma
         if param_shape is not None and bf.shape != tuple(param_shape):
             raise RefnormError(f"residual_bias has shape {bf.shape}, expected {tuple(param_shape)} "
                                "(the normalized shape, as weight)")
-        if bf.ndim > xf.ndim or xf.shape[xf.ndim - bf.ndim:] != bf.shape:
+        if bf.ndim == 0 or bf.ndim > xf.ndim or xf.shape[xf.ndim - bf.ndim:] != bf.shape:
             raise RefnormError(f"residual_bias has shape {bf.shape}, expected the trailing shape of x "
                                f"{xf.shape[xf.ndim - bf.ndim:] if bf.ndim <= xf.ndim else xf.shape}")
         s, e = _two_sum(hi, np.broadcast_to(bf, xf.shape))
@@ -143,7 +159,7 @@ def _forward(norm, x, residual, normalized_shape, weight, bias, residual_bias, a
     plan = feature_plan(xf.shape, normalized_shape, axes)
     if residual_bias is not None and axes is not None:
         raise RefnormError("residual_bias is defined with normalized_shape (trailing axes), not with axes")
-    h, hn = residual_stream(xf, residual, residual_bias, h_format=h_format, param_shape=plan.param_shape)
+    h, hn = _stream(xf, residual, residual_bias, h_format, plan.param_shape)
     f = norm(hn, normalized_shape, weight, bias, axes=axes, eps=eps, eps_placement=eps_placement, **extra)
     return AddNormForward(y=f.y, h=h, h_normalized=hn, mean=f.mean, var=f.var, rstd=f.rstd)
 
@@ -153,7 +169,7 @@ def _backward(norm, dy, x, residual, normalized_shape, weight, dh, residual_bias
     xf = as_float64("x", x)
     check_nonempty("x", xf)
     plan = feature_plan(xf.shape, normalized_shape, axes)
-    _, hn = residual_stream(xf, residual, residual_bias, h_format=h_format, param_shape=plan.param_shape)
+    _, hn = _stream(xf, residual, residual_bias, h_format, plan.param_shape)
     g = norm(dy, hn, normalized_shape, weight, axes=axes, eps=eps, eps_placement=eps_placement, **extra)
     dx = g.dx
     if dh is not None:

@@ -47,7 +47,8 @@ def _data(seed: int) -> dict[str, np.ndarray]:
     return {"x": rng.standard_normal(SHAPE), "dy": rng.standard_normal(SHAPE),
             "wc": rng.normal(1.0, 0.5, C), "bc": rng.normal(0.0, 1.0, C),
             "wf": rng.normal(1.0, 0.5, L), "bf": rng.normal(0.0, 1.0, L),
-            "rm": rng.normal(0.0, 1.0, C), "rv": rng.uniform(0.5, 2.0, C)}
+            "rm": rng.normal(0.0, 1.0, C), "rv": rng.uniform(0.5, 2.0, C),
+            "r": rng.standard_normal(SHAPE), "dh": rng.standard_normal(SHAPE), "rbf": rng.normal(0.0, 1.0, L)}
 
 
 def _calls(d: dict[str, np.ndarray]) -> dict[str, tuple[dict[str, Any], dict[str, str]]]:
@@ -71,9 +72,22 @@ def _calls(d: dict[str, np.ndarray]) -> dict[str, tuple[dict[str, Any], dict[str
         "layer_norm_forward": {"x": d["x"], "normalized_shape": (L,), "weight": d["wf"], "bias": d["bf"], **feat},
         "layer_norm_backward": {"dy": d["dy"], "x": d["x"], "normalized_shape": L, "weight": d["wf"], **feat,
                                 **saved_rows},
-        "rms_norm_forward": {"x": d["x"], "normalized_shape": (L,), "weight": d["wf"], "bias": d["bf"], **feat},
+        "rms_norm_forward": {"x": d["x"], "normalized_shape": (L,), "weight": d["wf"], "bias": d["bf"], **feat,
+                             "weight_offset": 0.0},
         "rms_norm_backward": {"dy": d["dy"], "x": d["x"], "normalized_shape": (L,), "weight": d["wf"], **feat,
-                              "rstd": np.ones((N, C))},
+                              "rstd": np.ones((N, C)), "weight_offset": 1.0},
+        "add_layer_norm_forward": {"x": d["x"], "residual": d["r"], "normalized_shape": (L,), "weight": d["wf"],
+                                   "bias": d["bf"], "residual_bias": d["rbf"], "h_format": "bfloat16", **feat},
+        "add_layer_norm_backward": {"dy": d["dy"], "x": d["x"], "residual": d["r"], "normalized_shape": (L,),
+                                    "weight": d["wf"], "dh": d["dh"], "residual_bias": d["rbf"], "h_format": None,
+                                    **feat},
+        "add_rms_norm_forward": {"x": d["x"], "residual": d["r"], "normalized_shape": (L,), "weight": d["wf"],
+                                 "bias": d["bf"], "residual_bias": None, "h_format": "float16",
+                                 "weight_offset": 1.0, **feat},
+        "add_rms_norm_backward": {"dy": d["dy"], "x": d["x"], "residual": d["r"], "normalized_shape": (L,),
+                                  "weight": d["wf"], "dh": d["dh"], "residual_bias": d["rbf"], "h_format": "bfloat16",
+                                  "weight_offset": 1.0, **feat},
+        "residual_stream": {"x": d["x"], "residual": d["r"], "residual_bias": d["rbf"], "h_format": "float8_e4m3fn"},
         "running_update": {"running": d["rm"], "batch_stat": d["rv"], "momentum": None,
                            "momentum_convention": "old", "batches_seen": 4},
     }
@@ -81,8 +95,14 @@ def _calls(d: dict[str, np.ndarray]) -> dict[str, tuple[dict[str, Any], dict[str
              "running_var": "variance", "mean": "param", "rstd": "rstd", "running": "param", "batch_stat": "param",
              "axis": "axis", "num_groups": "count", "batches_seen": "count", "eps": "eps", "momentum": "momentum",
              "training": "bool", "eps_placement": "choice", "momentum_convention": "choice",
-             "running_var_estimator": "choice", "normalized_shape": "sizes"}
-    return {f: (kw, {k: kinds[k] for k in kw}) for f, kw in calls.items()}
+             "running_var_estimator": "choice", "normalized_shape": "sizes",
+             "residual": "addend", "dh": "addend_opt", "residual_bias": "param", "h_format": "format",
+             "weight_offset": "offset"}
+    out = {f: (kw, {k: kinds[k] for k in kw}) for f, kw in calls.items()}
+    for f in out:  # x of a residual add (and dy beside dh): scaling it alone is not an invariance
+        if "residual" in out[f][0]:
+            out[f][1].update({k: "addend" for k in ("x", "dy") if k in out[f][0]})
+    return out
 
 
 def test_every_public_function_is_fuzzed():
@@ -126,6 +146,10 @@ INVALID = {
     "choice": _JUNK_COMMON + ["Inside", "", None, 1, np.array(["inside"]), ["new"]],
     "sizes": _JUNK_COMMON + ["5", (5.5,), 5.0, (True,), [[5]], (-5,), (), (4,), (3, 4, 5, 5), None],
 }
+INVALID["addend"] = INVALID["data"]
+INVALID["addend_opt"] = [v for v in INVALID["data"] if v is not None]  # dh=None: no gradient along the stream
+INVALID["format"] = _JUNK_COMMON + ["float", "int8", "", 1, ["bfloat16"], "BFloat16"]
+INVALID["offset"] = _JUNK_COMMON + [None, "1", True, 10**400, float("nan"), float("inf"), [1.0], np.array([1.0])]
 INVALID["variance"] = INVALID["param"] + [-np.ones(4), np.array([1.0, -0.5, 1.0, 1.0])]
 INVALID["rstd"] = INVALID["param"] + ["zero", "negative"]  # filled in per call (shape of the statistic)
 
@@ -133,7 +157,7 @@ INVALID["rstd"] = INVALID["param"] + ["zero", "negative"]  # filled in per call 
 def _valid_alternates(kind: str, value: Any) -> list[tuple[Any, Any, str]]:
     """(alternative spelling, canonical value, how to compare) for a valid value."""
     out: list[tuple[Any, Any, str]] = []
-    if kind in ("data", "param", "variance", "rstd") and isinstance(value, np.ndarray):
+    if kind in ("data", "addend", "addend_opt", "param", "variance", "rstd") and isinstance(value, np.ndarray):
         out.append((value.tolist(), value, "equal"))
         out.append((value.astype(np.float32), value.astype(np.float32).astype(np.float64), "equal"))
         out.append((value.astype(_ML.bfloat16), value.astype(_ML.bfloat16).astype(np.float64), "equal"))
@@ -144,6 +168,8 @@ def _valid_alternates(kind: str, value: Any) -> list[tuple[Any, Any, str]]:
         out += [(np.int32(value), value, "equal"), (value - 3, value, "equal")]
     elif kind == "count" and value is not None:
         out.append((np.int64(value), value, "equal"))
+    elif kind == "offset":
+        out += [(np.float32(value), value, "equal"), (int(value), value, "equal")]
     elif kind in ("eps", "momentum") and value is not None:
         out += [(np.float32(0.5), float(np.float32(0.5)), "equal"), (np.float64(value), value, "equal"),
                 (0, 0.0, "equal")]

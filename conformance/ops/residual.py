@@ -43,8 +43,7 @@ def oracle_view(case: Case, conv: Conventions, inp64: dict[str, Any],
     out = dict(inp64)
     if spec.residual:
         h, hn = refnorm.residual_stream(inp64["x"], inp64["residual"], inp64.get("residual_bias"),
-                                        h_format=case.dtype if conv.h_format == "storage" else None,
-                                        param_shape=spec.axes.param_shape(case))
+                                        h_format=case.dtype if conv.h_format == "storage" else None)
         out.update(x_in=inp64["x"], h=h, x=hn if h_normalized is None else h_normalized)
     if conv.weight_offset and inp64.get("weight") is not None:
         out.update(weight_in=inp64["weight"], weight=conv.weight_offset + np.asarray(inp64["weight"], np.float64))
