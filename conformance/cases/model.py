@@ -46,6 +46,10 @@ class Case:
     running_values : the running statistics' kind, "near" (near the batch's own), "far", "wide"
         (outside the storage format's range) or "at_mean" (x equal to the running mean); part of
         the id only when not "near".
+    out, scale : a quantized y (conformance.quantized): the 8-bit format ("" for y as is) and the
+        scale mode ("tensor", "row", "static" chosen to fit, "static_overflow" chosen so that some
+        values overflow); the id's last part ``out=<format>,scale=<mode>`` when set, and left out of
+        as_dict when not (so that every unquantized case is as it was).
     """
 
     op: str
@@ -65,6 +69,8 @@ class Case:
     norm_ndim: int = 0          # layer/RMS norm only
     dy: str = "normal"
     running_values: str = "near"
+    out: str = ""
+    scale: str = ""
     tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
@@ -85,6 +91,8 @@ class Case:
             m = "cumulative" if self.momentum is None else f"{self.momentum:g}"
             parts.append(f"momentum={m}" + (f",seen={self.batches_seen}" if self.momentum is None else ""))
         parts.append(self.strides)
+        if self.out:
+            parts.append(f"out={self.out},scale={self.scale}")
         return "/".join(parts)
 
     @property
@@ -121,6 +129,9 @@ class Case:
     def as_dict(self) -> dict:
         d = asdict(self)
         d["shape"] = list(self.shape)
+        for k in ("out", "scale"):  # unquantized cases keep their dict as before these fields
+            if not d[k]:
+                del d[k]
         d["id"] = self.id
         return d
 
