@@ -21,6 +21,7 @@ from conformance import Kernel
 from conformance.quantization import Quantization
 from refnorm import quantize as rq
 
+from conformance import dtypes as fmt
 from seeded_bugs import NumpyNorm
 
 F32 = np.float32
@@ -68,7 +69,8 @@ class QuantNorm(NumpyNorm):
             return np.asarray(y_scale).astype(F32), None
         amax = self._amax(self._scale_source(y32, x, eps, kw))
         s = (np.maximum(amax, F32(self.q.amax_floor)) / F32(self.fmt.q_max)).astype(F32)
-        return s, s
+        s = s.astype(fmt.dtype_of(self.q.scale_format)).astype(F32)
+        return s, s  # y_q is divided by the scale it returns, rounded to its format
 
     # ---- entry point ---------------------------------------------------------------
     def forward(self, x, weight=None, bias=None, *, eps, y_scale=None, **kw):
@@ -77,7 +79,7 @@ class QuantNorm(NumpyNorm):
         sb = s[..., None] if self.q.scale == "row" else s
         with np.errstate(all="ignore"):
             yq = self._round((y32 / sb).astype(F32))
-        head = (yq,) if ret is None else (yq, np.asarray(ret).astype(np.dtype(self.q.scale_format)))
+        head = (yq,) if ret is None else (yq, np.asarray(ret).astype(fmt.dtype_of(self.q.scale_format)))
         return head + tuple(outs[1:])  # y_q[, scale], then the statistics as NumpyNorm returns them
 
     def kernel(self, name: str, notes: str = "", precision: dict | None = None,
