@@ -10,6 +10,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
+from .text import visible
+
 __all__ = ["LevelRow", "level_rows", "level_lines", "hist_text"]
 
 
@@ -66,6 +68,8 @@ def level_rows(doc: dict[str, Any]) -> list[LevelRow]:
 def level_lines(doc: dict[str, Any]) -> list[str]:
     """Terminal lines: 'levels: float32 y_q (float8_e4m3fn, scale=row): 5 of 2106368 element(s) on another
     level than the oracle's correctly rounded one (-1: 3, +1: 2), at most 1 level, over 7 case(s)'."""
-    return [f"levels: {r.dtype} {r.output} ({r.format}, scale={r.scale}): {r.off_level} of {r.compared} element(s) "
-            f"on another level than the oracle's correctly rounded one ({hist_text(r.hist)}), at most "
+    # names come from the kernel or a file: control characters are shown, not sent to the terminal
+    return [f"levels: {visible(r.dtype)} {visible(r.output)} ({visible(r.format)}, scale={visible(r.scale)}): "
+            f"{r.off_level} of {r.compared} element(s) on another level than the oracle's correctly rounded one "
+            f"({visible(hist_text(r.hist))}), at most "
             f"{r.max_levels} level(s), over {r.cases} case(s)" for r in level_rows(doc)]
