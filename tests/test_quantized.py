@@ -287,3 +287,41 @@ def test_torch_compositions_pass(op):
         left = {n: [c for c in cids if c not in known] for n, cids in fails.items()}
         assert not any(left.values()), left
         assert not doc["counts"]["error"] and not doc["counts"]["crashed"]
+
+
+def test_cases_command_lists_quantized_ids(capsys):
+    from conformance.cli import main
+
+    assert main(["cases", "--op", "rms_norm", "--tier", "smoke"]) == 0
+    plain = capsys.readouterr().out.split()
+    assert main(["cases", "--op", "rms_norm", "--tier", "smoke", "--quantized"]) == 0
+    both = capsys.readouterr().out.split()
+    assert both[:len(plain)] == plain and all("/out=" in i for i in both[len(plain):]) and len(both) > len(plain)
+
+
+def test_pytest_plugin_runs_the_declared_quantized_cases(tmp_path):
+    # The plugin takes its cases from the same selection as `refnorm check` (conformance.run.select_cases).
+    pytest.importorskip("torch")
+    from test_pytest_plugin import run_pytest
+
+    spec = "conformance.adapters.torch_quantized:quantized?op=rms_norm,format=float8_e5m2,scale=static"
+    r = run_pytest(tmp_path / "p", "--refnorm-kernel", spec, "--refnorm-tier", "smoke", "--collect-only", "-q")
+    ids = [ln for ln in r.stdout.splitlines() if "::" in ln]
+    assert ids and all(i.endswith(("out=float8_e5m2,scale=static", "out=float8_e5m2,scale=static_overflow"))
+                       for i in ids), r.stdout[-2000:]
+
+
+def test_y_beside_y_q_is_checked_too():
+    # outputs ("y", "y_q", "scale", ...): y is compared as for any kernel, y_q and scale as quantized outputs.
+    class WithY(QuantNorm):
+        def forward(self, x, weight=None, bias=None, **kw):
+            out = super().forward(x, weight, bias, **kw)
+            return (self._y32.astype(np.float32),) + tuple(out)
+
+    q = Quantization("float8_e4m3fn", scale="tensor")
+    base = QuantNorm("layer_norm", q).kernel("q")
+    k = replace(base, forward=WithY("layer_norm", q).forward, outputs=("y",) + base.outputs)
+    doc = _run(k, tier="smoke")
+    names = {o["name"] for c in doc["cases"] for o in c["outputs"]}
+    assert {"y", "y_q", "scale", "mean", "rstd"} <= names
+    assert not doc["counts"]["failed"], _failing(doc)
