@@ -46,7 +46,7 @@ from .tolerances import derive_bounds
 from .tolerances.bound import Bound, json_number
 
 __all__ = ["CASE_SCALES", "VALUE_KINDS", "quantized_cases", "skip_reason", "forward_kwargs", "check_outputs",
-           "static_scale", "level_histogram", "case_scale_mode", "declared_cases"]
+           "static_scale", "level_histogram", "case_scale_mode", "declared_cases", "peer_specs"]
 
 #: The scale modes of the cases: the declaration's three, the static one twice.
 CASE_SCALES = ("tensor", "row", "static", "static_overflow")
@@ -317,3 +317,22 @@ def declared_cases(kernel: Kernel, cases: list[Case]) -> list[Case]:
     """The quantized cases whose format and scale mode are the kernel's declaration."""
     q = kernel.quantization
     return [c for c in cases if c.out == q.format and case_scale_mode(c) == q.scale]
+
+
+#: Libraries with a composition that quantizes y: adapter module -> the composition's factory.
+PEER_COMPOSITIONS = {"conformance.adapters.torch_cpu": "conformance.adapters.torch_quantized:quantized"}
+
+
+def peer_specs(adapter: str, op: str, q: dict[str, Any], run_spec: str = "") -> list[str]:
+    """The specs of a library's quantized composition for a report's peers: the same op, format and scale
+    mode (its own overflow and precision, declared); none where the library has none, or where the
+    kernel under test is that composition."""
+    base = PEER_COMPOSITIONS.get(adapter)
+    if base is None or run_spec.startswith(base.split(":")[0] + ":"):
+        return []
+    from refnorm.quantize import QFORMATS, SCALE_MODES
+
+    fmt, sc = q.get("format"), q.get("scale")
+    if fmt not in QFORMATS or sc not in SCALE_MODES:  # a document from elsewhere: nothing to run
+        return []
+    return [f"{base}?op={op},format={fmt},scale={sc}"]

@@ -325,3 +325,16 @@ def test_y_beside_y_q_is_checked_too():
     names = {o["name"] for c in doc["cases"] for o in c["outputs"]}
     assert {"y", "y_q", "scale", "mean", "rstd"} <= names
     assert not doc["counts"]["failed"], _failing(doc)
+
+
+def test_peer_specs_pick_the_matching_composition():
+    from conformance.quantized import peer_specs
+
+    q = {"format": "int8", "scale": "row"}
+    assert peer_specs("conformance.adapters.torch_cpu", "group_norm", q) == [
+        "conformance.adapters.torch_quantized:quantized?op=group_norm,format=int8,scale=row"]
+    assert peer_specs("conformance.adapters.keras_cpu", "group_norm", q) == []
+    # the kernel under test is the composition itself, or the document names an unknown format: nothing to run
+    assert peer_specs("conformance.adapters.torch_cpu", "group_norm", q,
+                      "conformance.adapters.torch_quantized:quantized?op=group_norm") == []
+    assert peer_specs("conformance.adapters.torch_cpu", "group_norm", {"format": "<x>", "scale": "row"}) == []
