@@ -203,6 +203,9 @@ def _yq_result(q: Quantization, fmt: rq.QFormat, a_q: np.ndarray, t: np.ndarray,
         ok_val = err <= bq
         ok = np.where(sure, is_ov, ok_val | (maybe & is_ov))
         ok = np.where(t_nan, np.isnan(a), ok)
+        accepted = ok & ~ok_val  # the declared overflow value (or NaN for NaN): no error, as compare's accepts
+        n_ov = int(np.count_nonzero(accepted & ~t_nan & maybe))
+        err = np.where(accepted, 0.0, err)
     mism = ~ok
     ref = rq.quantize(t, fmt, overflow=q.overflow)
     both = ~np.isnan(a) & ~np.isnan(ref)
@@ -241,7 +244,6 @@ def _yq_result(q: Quantization, fmt: rq.QFormat, a_q: np.ndarray, t: np.ndarray,
         levels={"format": q.format, "scale": q.scale, "overflow": q.overflow, "compared": int(diff.size),
                 "off_level": off, "hist": hist, "max_levels": int(np.abs(diff).max()) if diff.size else 0},
     )
-    n_ov = int(np.count_nonzero(maybe & is_ov & ~ok_val))
     if n_ov:
         res.accepted = {f"beyond the format's range: the declared overflow value ({q.overflow})": n_ov}
     if res.passed and slack > 2.0:
