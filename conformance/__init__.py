@@ -5,7 +5,8 @@ Passing is evidence on the cases run, not a proof of correctness; sign-off on
 hardware remains the reviewer's responsibility.
 """
 
-__all__ = ["Kernel", "Precision", "Conventions", "KernelError", "load_kernel", "run_check", "RunOptions"]
+__all__ = ["Kernel", "Precision", "Conventions", "KernelError", "load_kernel", "run_check", "RunOptions",
+           "Quantization"]
 
 
 def __getattr__(name):
@@ -19,4 +20,8 @@ def __getattr__(name):
         from . import run
 
         return getattr(run, name)
+    if name == "Quantization":
+        from .quantization import Quantization
+
+        return Quantization
     raise AttributeError(f"module 'conformance' has no attribute {name!r}")

@@ -108,6 +108,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--op", nargs="+", choices=OPS, default=list(OPS))
     s.add_argument("--dtype", nargs="+", choices=_dtypes.FORMATS, default=["float32"])
     s.add_argument("--tier", choices=TIERS, default="standard")
+    s.add_argument("--quantized", action="store_true",
+                   help="also list the quantized-y cases (ids ending out=FORMAT,scale=MODE)")
     s.set_defaults(func=cmd_cases)
     for ext in _extensions():
         if hasattr(ext, "add_commands"):
@@ -256,7 +258,7 @@ def finish(args: argparse.Namespace, doc: dict[str, Any], exts) -> int:
 
 
 def cmd_cases(args: argparse.Namespace, argv: Sequence[str]) -> int:
-    cases = catalog(args.op, args.dtype, args.tier)
+    cases = catalog(args.op, args.dtype, args.tier, quantized=getattr(args, "quantized", False))
     for c in cases:
         print(c.id)
     print(f"{len(cases)} cases ({args.tier} tier)", file=sys.stderr)

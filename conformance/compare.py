@@ -54,6 +54,8 @@ class OutputResult:
     class_only: str = ""
     invariant: str = ""
     accepted_inconclusive: bool = False
+    #: a quantized output (conformance.quantized): elements on another level than the oracle's, and by how many
+    levels: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: tuples as lists, non-finite floats as "inf"/"-inf"/"nan"."""

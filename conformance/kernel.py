@@ -20,6 +20,7 @@ from . import dtypes
 from . import ops as _ops
 from .ops import GRADS, OPS, RUNNING_OUTPUTS, SAVED_FORMS, STATISTICS
 from .ops.spec import H_FORMATS, RESIDUAL_OUTPUTS
+from .quantization import Quantization, check_declaration as _check_quantization, quant_outputs
 
 __all__ = [
     "OPS",
@@ -211,6 +212,7 @@ class Kernel:
     precision: Any = None
     notes: str = ""
     device: str | None = None
+    quantization: Quantization | None = None  # a quantized y (conformance.quantization); None: y as is
 
     def __post_init__(self) -> None:
         _validate(self)
@@ -250,6 +252,7 @@ class Kernel:
             "notes": self.notes,
             "unchecked": unchecked_outputs(self),
             "device": self.device,
+            "quantization": None if self.quantization is None else self.quantization.as_dict(),
         }
 
 
@@ -355,9 +358,12 @@ def _check_outputs(k: Kernel, bad: Callable[[str], None]) -> None:
     c = k.conventions
     spec = _ops.get(k.op)
     returns_running = bool(spec.running_outputs) and c.running == "return"
-    if k.outputs[:1] != ("y",):
+    _check_quantization(k.quantization, k.outputs, k.forward is not None, bad)
+    q_out = quant_outputs(k.quantization)
+    if k.outputs[:1] != ("y",) and not (q_out and k.outputs[:1] == q_out[:1]):
         bad(f"outputs is {k.outputs}, expected 'y' first")
-    allowed = {"y", *spec.residual_outputs, *spec.saved} | (set(RUNNING_OUTPUTS) if returns_running else set())
+    allowed = {"y", *spec.residual_outputs, *spec.saved, *q_out} | (set(RUNNING_OUTPUTS) if returns_running
+                                                                    else set())
     unknown = [o for o in k.outputs if o not in allowed]
     if unknown:
         bad(f"outputs names {unknown}, which the declaration does not produce "

@@ -6,6 +6,7 @@ from typing import Any
 
 from .results import CAUTION, as_float
 from .run.shards import shard_label, shard_lines
+from .levels import level_lines
 from .text import visible
 
 
@@ -58,7 +59,8 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     names = unchecked_names(doc)
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
-    lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc), *evidence_lines(doc)]
+    lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc), *evidence_lines(doc),
+             *level_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
 

@@ -183,8 +183,9 @@ def _valid(c: Case) -> bool:
     return True
 
 
-def catalog(ops: Iterable[str], dtypes: Iterable[str], tier: str = "standard") -> list[Case]:
-    """The cases of a tier for the given ops and dtypes, deduplicated by id, in a stable order."""
+def catalog(ops: Iterable[str], dtypes: Iterable[str], tier: str = "standard", quantized: bool = False) -> list[Case]:
+    """The cases of a tier for the given ops and dtypes, deduplicated by id, in a stable order.
+    ``quantized``: add the quantized-y cases (conformance.quantized) after each op and dtype's others."""
     if tier not in TIERS:
         raise ValueError(f"tier is {tier!r}, expected one of {', '.join(TIERS)}")
     gen = {"smoke": _smoke, "standard": _standard, "exhaustive": _exhaustive}[tier]
@@ -196,6 +197,14 @@ def catalog(ops: Iterable[str], dtypes: Iterable[str], tier: str = "standard") -
             for c in gen(spec, dt):
                 if _valid(c) and c.id not in seen:
                     seen[c.id] = c
+            if quantized:
+                from ..quantized import quantized_cases
+
+                shape, k = spec.shapes.long
+                long = _base(spec, dt, shape, spec.axes.layouts[0], k, tier)
+                for c in quantized_cases(spec, dt, tier, _mid(spec, dt, tier), long):
+                    if _valid(c) and c.id not in seen:
+                        seen[c.id] = c
     return list(seen.values())
 
 
@@ -210,7 +219,7 @@ def find_case(case_id: str, tiers: Iterable[str] = TIERS) -> Case:
     if dt not in _dtypes.FORMATS:
         raise KeyError(f"no case with id {case_id!r}: dtype {dt!r} is not one of {', '.join(_dtypes.FORMATS)}")
     for t in tiers:
-        for c in catalog([op], [dt], t):
+        for c in catalog([op], [dt], t, quantized="/out=" in case_id):
             if c.id == case_id:
                 return c
     raise KeyError(f"no case with id {case_id!r} in tiers {', '.join(tiers)} (list them with `refnorm cases`)")

@@ -29,7 +29,7 @@ STRIDE_KINDS = ("contiguous", "transposed", "sliced", "reversed", "channels_last
 
 #: Case fields that results documents and catalogs written before them do not have, with their
 #: defaults: ``as_dict`` leaves a field out at its default, so those documents' cases read the same.
-_LATER_FIELDS = {"residual_bias": False}
+_LATER_FIELDS = {"residual_bias": False, "out": "", "scale": ""}
 
 
 @dataclass(frozen=True)
@@ -53,6 +53,10 @@ class Case:
     running_values : the running statistics' kind, "near" (near the batch's own), "far", "wide"
         (outside the storage format's range) or "at_mean" (x equal to the running mean); part of
         the id only when not "near".
+    out, scale : a quantized y (conformance.quantized): the 8-bit format ("" for y as is) and the
+        scale mode ("tensor", "row", "static" chosen to fit, "static_overflow" chosen so that some
+        values overflow); the id's last part ``out=<format>,scale=<mode>`` when set, and left out of
+        as_dict when not (so that every unquantized case is as it was).
     """
 
     op: str
@@ -73,6 +77,8 @@ class Case:
     dy: str = "normal"
     running_values: str = "near"
     residual_bias: bool = False
+    out: str = ""
+    scale: str = ""
     tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
@@ -95,6 +101,8 @@ class Case:
             m = "cumulative" if self.momentum is None else f"{self.momentum:g}"
             parts.append(f"momentum={m}" + (f",seen={self.batches_seen}" if self.momentum is None else ""))
         parts.append(self.strides)
+        if self.out:
+            parts.append(f"out={self.out},scale={self.scale}")
         return "/".join(parts)
 
     @property

@@ -404,6 +404,9 @@ def kernel_facts(doc: dict[str, Any]) -> list[tuple[str, str]]:
                                      "min_reduction") if f in k]
     if flags:
         facts.append(("declared support", ", ".join(flags)))
+    if k.get("quantization"):
+        q = k["quantization"]
+        facts.append(("quantization", ", ".join(f"{key}={v}" for key, v in q.items())))
     if k.get("notes"):
         facts.append(("notes", str(k["notes"])))
     return facts

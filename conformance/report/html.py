@@ -114,6 +114,26 @@ def _budget_td(v: Any) -> str:
             f'<span class="bar {tone}"><span style="width:{width:.0f}%"></span></span>{_e(text)}</td>')
 
 
+def _levels_table(doc: dict[str, Any]) -> str:
+    """Quantized outputs: elements on another level than the oracle's correctly rounded one (conformance.levels)."""
+    from ..levels import hist_text, level_rows
+
+    rows = level_rows(doc)
+    if not rows:
+        return ""
+    head = ("dtype", "output", "format, scale", "cases", "elements", "on another level", "levels off (kernel − oracle)",
+            "at most", "worst case")
+    out = ['<h3 id="levels">Quantization levels</h3><table class="summary" id="levels-table"><thead><tr>']
+    out += [f"<th>{_e(h)}</th>" for h in head]
+    out.append("</tr></thead><tbody>")
+    for r in rows:
+        cells = (r.dtype, r.output, f"{r.format}, scale={r.scale}", r.cases, r.compared, r.off_level,
+                 hist_text(r.hist), r.max_levels, r.worst_case)
+        out.append("<tr>" + "".join(f"<td>{_e(str(v))}</td>" for v in cells) + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
 def _summary_table(doc: dict[str, Any]) -> str:
     rows = C.table_rows(doc)
     if not rows:
@@ -323,7 +343,7 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
         '<p class="note">Max errors are over every element of every case of the row; the fraction of the bound '
         "is max over elements of |kernel − oracle| / bound (passing needs ≤ 1), with the case where it was "
         "largest and that case's bound below each row.</p>",
-        _summary_table(doc), "</section>",
+        _summary_table(doc), _levels_table(doc), "</section>",
         _peers_section(doc, peers, peers_note),
         _failures_section(doc),
         _plots_section(plots),

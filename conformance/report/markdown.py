@@ -13,6 +13,7 @@ from __future__ import annotations
 import re
 from typing import Any
 
+from ..levels import hist_text, level_rows
 from ..run.shards import shard_label
 from ..text import visible
 from . import content as C
@@ -84,6 +85,20 @@ def _summary(doc: dict[str, Any]) -> list[str]:
         out += ["", "<details><summary>Bounds of the worst cases (formula and numbers)</summary>", ""]
         out += [f"- {md(r.dtype)} {md(r.output)}: <code>{md(b, None)}</code>" for r, b in bounds]
         out += ["", "</details>"]
+    out += _levels(doc)
+    return out
+
+
+def _levels(doc: dict[str, Any]) -> list[str]:
+    """Quantized outputs: elements on another level than the oracle's correctly rounded one (conformance.levels)."""
+    rows = level_rows(doc)
+    if not rows:
+        return []
+    out = ["", "| dtype | output | format, scale | cases | elements | on another level | levels off (kernel − oracle) "
+           "| at most | worst case |", "|---|---|---|--:|--:|--:|---|--:|---|"]
+    out += ["| " + " | ".join([md(r.dtype), f"**{md(r.output)}**", md(f"{r.format}, scale={r.scale}"), str(r.cases),
+                               str(r.compared), str(r.off_level), md(hist_text(r.hist)), str(r.max_levels),
+                               _code(r.worst_case)]) + " |" for r in rows]
     return out
 
 

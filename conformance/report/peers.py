@@ -97,13 +97,20 @@ def _choose(module: Any, lib: Library, op: str, doc: dict[str, Any]):
     from ..kernel import KernelError, load_kernel
 
     kinds = {}
-    for name in (op, f"{op}_mixed"):
-        if hasattr(module, name):
-            spec = f"{lib.adapter}:{name}"
-            try:
-                kinds[spec] = load_kernel(spec)
-            except KernelError as e:
-                kinds[spec] = e
+    specs = [f"{lib.adapter}:{name}" for name in (op, f"{op}_mixed") if hasattr(module, name)]
+    q = doc["kernel"].get("quantization")
+    if isinstance(q, dict):  # a quantized y: the library's composition with the same format and scale, if any
+        from ..quantized import peer_specs
+
+        specs = peer_specs(lib.adapter, op, q, str((doc.get("run") or {}).get("spec") or ""))
+        if not specs:
+            raise KernelError(f"{lib.adapter} has no composition with a quantized y ({q.get('format')}, "
+                              f"scale={q.get('scale')})")
+    for spec in specs:
+        try:
+            kinds[spec] = load_kernel(spec)
+        except KernelError as e:
+            kinds[spec] = e
     errors = [v for v in kinds.values() if isinstance(v, KernelError)]
     usable = {s: k for s, k in kinds.items() if not isinstance(k, KernelError)}
     if not usable:

@@ -14,7 +14,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from .. import dtypes, ops
+from .. import dtypes, ops, quantized
 from ..arrays import as_numpy
 from ..cases.generators import make_inputs
 from ..cases.model import Case
@@ -38,6 +38,9 @@ def skip_reason(kernel: Kernel, case: Case) -> str | None:
     """Why the kernel's declaration excludes this case, or None when it applies."""
     if case.op != kernel.op:
         return f"op {case.op} is not the kernel's op {kernel.op}"
+    why = quantized.skip_reason(kernel, case)
+    if why:
+        return why
     if case.dtype not in kernel.dtypes:
         return f"dtype {case.dtype} not declared (kernel declares {', '.join(kernel.dtypes)})"
     if case.layout in ("channels_first", "channels_last") and case.layout not in kernel.layouts:
@@ -142,7 +145,10 @@ def _kernel_outputs(kernel: Kernel, case: Case, inp: dict[str, Any], oracle_fwd,
             run_inp["running_mean"] = inp["running_mean"].copy()
             run_inp["running_var"] = inp["running_var"].copy()
         before = _snapshot({k: v for k, v in run_inp.items() if not (inplace and k.startswith("running_"))})
-        res = _call(kernel, fwd, ops.kernel_kwargs(case, fwd, run_inp))
+        kw = ops.kernel_kwargs(case, fwd, run_inp)
+        if train:
+            kw.update(quantized.forward_kwargs(kernel, case, oracle_fwd))  # a static scale (quantized y)
+        res = _call(kernel, fwd, kw)
         names = kernel.outputs if train else ("y",)
         got = _named(res, names, fwd)
         if train and (not case.running or not kernel.updates_running):
@@ -310,7 +316,7 @@ def _execute(kernel: Kernel, case: Case, seed: int,
     inp64, fwd = _normalized_h(kernel, case, inp64, fwd, raw)
     expected = oracle_expected(kernel, case, inp64, fwd, tuple(raw))
     oracle_s += time.perf_counter() - t_or
-    bounds = case_bounds(case, prec, conv, inp64, expected, overrides)
+    bounds = case_bounds(case, prec, conv, inp64, expected, overrides) if expected else {}  # {}: only y_q
 
     results = []
     for name, exp in expected.items():
@@ -334,5 +340,7 @@ def _execute(kernel: Kernel, case: Case, seed: int,
                 r.passed, r.invariant, r.inconclusive = False, broken, ""
                 r.message = f"{broken}\n{r.message}"
         results.append(r)
+    if kernel.quantization is not None and case.out:
+        results += quantized.check_outputs(kernel, case, prec, conv, inp64, fwd, raw)
     return judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
                   oracle_s=oracle_s)

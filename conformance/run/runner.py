@@ -45,6 +45,10 @@ def select_cases(kernel: Kernel, opts: RunOptions) -> list[Case]:
     if opts.case_ids:
         return [find_case(cid) for cid in dict.fromkeys(opts.case_ids)]
     dts = opts.dtypes or kernel.dtypes
+    if kernel.quantization is not None:  # a quantized y: the quantized cases of its declaration
+        from ..quantized import declared_cases
+
+        return declared_cases(kernel, catalog([kernel.op], dts, opts.tier, quantized=True))
     return catalog([kernel.op], dts, opts.tier)
 
 
