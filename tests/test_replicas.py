@@ -194,3 +194,15 @@ def test_a_kernel_child_does_not_outlive_the_case():
 def test_unloadable_kernel_is_an_error_not_an_exception():
     res = run_replica_case(ReplicaKernel(name="missing", spec="replica_kernels:NoSuchKernel"), CASES[0])
     assert res.status == "error" and "loading the kernel" in res.message and "NoSuchKernel" in res.message
+
+
+def test_torch_composition_peer_passes_and_torch_refuses_cpu_sync():
+    # torch as a peer (conformance/adapters/torch_replicas.py): its CPU ops composed as SyncBatchNorm
+    # does, on the plan with four replicas and the cancellation values
+    torch = pytest.importorskip("torch")
+    res = run_replica_case(ReplicaKernel(name="torch", spec="conformance.adapters.torch_replicas:composition"),
+                           CASES[2])
+    assert res.status == "passed", res.message
+    # the primitive SyncBatchNorm uses has no CPU kernel in this torch (what the adapter's docstring says)
+    with pytest.raises((NotImplementedError, RuntimeError)):
+        torch.batch_norm_stats(torch.randn(4, 3, 5), 1e-5)
