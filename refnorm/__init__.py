@@ -11,8 +11,6 @@ from .errors import RefnormError
 from .group_norm import group_norm_backward, group_norm_forward
 from .instance_norm import instance_norm_backward, instance_norm_forward
 from .layer_norm import layer_norm_backward, layer_norm_forward
-from .replicas import (ReplicaBackward, ReplicaForward, merge_moments, replica_batch_norm_backward,
-                       replica_batch_norm_forward, shard_moments)
 from .results import NormBackward, NormForward
 from .rms_norm import rms_norm_backward, rms_norm_forward
 from .running import running_update
@@ -34,10 +32,4 @@ __all__ = [
     "rms_norm_forward",
     "rms_norm_backward",
     "running_update",
-    "merge_moments",
-    "shard_moments",
-    "replica_batch_norm_forward",
-    "replica_batch_norm_backward",
-    "ReplicaForward",
-    "ReplicaBackward",
 ]

@@ -14,6 +14,11 @@ batch normalization of the concatenation; the functions below compute it so (the
 oracle of :mod:`refnorm.batch_norm` on the concatenated batch) and return each replica's share,
 so that their values do not depend on any merge order. :func:`merge_moments` is the merge itself,
 as a pure function, for kernels and tests that compose it.
+
+These functions live in this module (``refnorm.replicas``), not in ``refnorm``'s top-level
+namespace: their arguments are lists of shards, which the single-process API's checks and its
+fuzz table (tests/test_oracle_fuzz.py) do not model; tests/test_oracle_replicas.py checks their
+validation instead.
 """
 
 from __future__ import annotations
@@ -24,7 +29,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ._moments import moments
-from ._validate import as_float64, check_choice
+from ._validate import as_float64, canonical_axis, check_choice, check_nonempty
 from .batch_norm import batch_norm_backward, batch_norm_forward
 from .errors import RefnormError
 
@@ -133,7 +138,8 @@ def _channels(x: Any, axis: int, name: str) -> tuple[np.ndarray, int]:
     a = as_float64(name, x)
     if a.ndim < 2:
         raise RefnormError(f"{name} has {a.ndim} dimensions, expected at least 2: (N, C, *spatial) or (N, *spatial, C)")
-    ax = axis % a.ndim
+    check_nonempty(name, a)
+    ax = canonical_axis(axis, a.ndim) % a.ndim
     c = a.shape[ax]
     moved = np.moveaxis(a, ax, 1)
     return moved.reshape(moved.shape[0], c, -1), c

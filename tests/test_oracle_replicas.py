@@ -8,6 +8,7 @@ import pytest
 
 import refnorm
 from refnorm import RefnormError
+from refnorm import replicas as rep
 
 U64 = np.finfo(np.float64).eps / 2
 
@@ -25,7 +26,7 @@ def test_merge_worked_example_exact():
     # union by hand: mean 6, M2 = 25+16+9+16+64 = 130). Chan, Golub & LeVeque 1983, eq. 2.1.
     a = (3, 2.0, 2.0)       # mean 2, M2 = 1 + 0 + 1
     b = (2, 12.0, 8.0)      # mean 12, M2 = 4 + 4
-    n, m, s = refnorm.merge_moments([a, b])
+    n, m, s = rep.merge_moments([a, b])
     assert (float(n), float(m), float(s)) == (5.0, 6.0, 130.0)
 
 
@@ -34,8 +35,8 @@ def test_merge_matches_exact_rationals_on_four_parts():
     # deviations of the union by definition), four unequal parts, one a single value.
     rng = np.random.default_rng(3)
     parts_x = [rng.standard_normal(k) + 4.0 * i for i, k in enumerate((7, 1, 12, 3))]
-    parts = [refnorm.shard_moments(p.reshape(-1, 1)) for p in parts_x]
-    n, m, s = refnorm.merge_moments(parts)
+    parts = [rep.shard_moments(p.reshape(-1, 1)) for p in parts_x]
+    n, m, s = rep.merge_moments(parts)
     allx = [Fraction(float(v)) for p in parts_x for v in p]
     mean = sum(allx) / len(allx)
     m2 = sum((v - mean) ** 2 for v in allx)
@@ -46,12 +47,12 @@ def test_merge_matches_exact_rationals_on_four_parts():
 
 
 def test_merge_identity_and_validation():
-    n, m, s = refnorm.merge_moments([(0, 0.0, 0.0), (4, 1.5, 2.0)])  # count 0 is the identity (definition)
+    n, m, s = rep.merge_moments([(0, 0.0, 0.0), (4, 1.5, 2.0)])  # count 0 is the identity (definition)
     assert (float(n), float(m), float(s)) == (4.0, 1.5, 2.0)
     with pytest.raises(RefnormError, match="parts"):
-        refnorm.merge_moments([])
+        rep.merge_moments([])
     with pytest.raises(RefnormError, match="negative"):
-        refnorm.merge_moments([(2, 0.0, -1.0)])
+        rep.merge_moments([(2, 0.0, -1.0)])
 
 
 @pytest.mark.parametrize("sizes,channels_last", [((3, 5), False), ((1, 4, 2), True), ((2, 1, 6, 3), False)])
@@ -63,17 +64,17 @@ def test_global_result_is_batch_norm_of_the_concatenation(sizes, channels_last):
     axis = -1 if channels_last else 1
     w, b = rng.standard_normal(3), rng.standard_normal(3)
     rm, rv = np.zeros(3), np.ones(3)
-    f = refnorm.replica_batch_norm_forward(xs, w, b, axis=axis, running_mean=rm, running_var=rv)
+    f = rep.replica_batch_norm_forward(xs, w, b, axis=axis, running_mean=rm, running_var=rv)
     whole = np.concatenate(xs)
     ref = refnorm.batch_norm_forward(whole, w, b, axis=axis, running_mean=rm, running_var=rv)
     np.testing.assert_array_equal(np.concatenate(f.y), ref.y)
     np.testing.assert_array_equal(f.running_var, ref.running_var)
     # the merge of the shards' moments agrees with the two-pass moments of the whole to float64 accuracy
-    n, m, s = refnorm.merge_moments([refnorm.shard_moments(x, axis=axis) for x in xs])
+    n, m, s = rep.merge_moments([rep.shard_moments(x, axis=axis) for x in xs])
     assert float(n[0]) == f.count == sum(f.counts)
     np.testing.assert_allclose(m, f.mean, rtol=0, atol=64 * U64 * np.abs(whole).max())
     np.testing.assert_allclose(s / n, f.var, rtol=64 * U64)
-    g = refnorm.replica_batch_norm_backward(dys, xs, w, axis=axis)
+    g = rep.replica_batch_norm_backward(dys, xs, w, axis=axis)
     gref = refnorm.batch_norm_backward(np.concatenate(dys), whole, w, axis=axis)
     np.testing.assert_array_equal(np.concatenate(g.dx), gref.dx)
     # local shares sum to the reduced gradients (definition of the reduction)
@@ -92,8 +93,8 @@ def test_against_torch_composition():
     xs = _shards(rng, sizes, tail=(4, 3, 2), offset=5.0)
     dys = _shards(rng, sizes, tail=(4, 3, 2))
     w, b = rng.standard_normal(4), rng.standard_normal(4)
-    f = refnorm.replica_batch_norm_forward(xs, w, b, running_mean=np.zeros(4), running_var=np.ones(4))
-    g = refnorm.replica_batch_norm_backward(dys, xs, w)
+    f = rep.replica_batch_norm_forward(xs, w, b, running_mean=np.zeros(4), running_var=np.ones(4))
+    g = rep.replica_batch_norm_backward(dys, xs, w)
     tx = torch.tensor(np.concatenate(xs), requires_grad=True)
     tw, tb = torch.tensor(w, requires_grad=True), torch.tensor(b, requires_grad=True)
     rm, rv = torch.zeros(4, dtype=torch.float64), torch.ones(4, dtype=torch.float64)
@@ -109,6 +110,12 @@ def test_against_torch_composition():
 
 def test_shards_that_differ_in_more_than_the_batch_are_refused():
     with pytest.raises(RefnormError, match=r"shards\[1\]"):
-        refnorm.replica_batch_norm_forward([np.ones((2, 3, 4)), np.ones((2, 4, 4))])
+        rep.replica_batch_norm_forward([np.ones((2, 3, 4)), np.ones((2, 4, 4))])
+    with pytest.raises(RefnormError, match="axis"):
+        rep.shard_moments(np.ones((2, 3)), axis=5)
+    with pytest.raises(RefnormError, match="no elements"):
+        rep.shard_moments(np.ones((0, 3)))
+    with pytest.raises(RefnormError, match="shards"):
+        rep.replica_batch_norm_forward("abc")
     with pytest.raises(RefnormError, match="dys"):
-        refnorm.replica_batch_norm_backward([np.ones((2, 3))], [np.ones((3, 3))])
+        rep.replica_batch_norm_backward([np.ones((2, 3))], [np.ones((3, 3))])
