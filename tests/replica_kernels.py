@@ -193,3 +193,10 @@ class StartsAChild(ReplicaNorm):
             child = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(3600)"])
             raise RuntimeError(f"replica 0 failed on purpose after starting child pid {child.pid}")
         return super().forward(x, weight, bias, **kw)
+
+
+class ReturnsAList(ReplicaNorm):
+    """Backward returns a list instead of the dict of outputs."""
+
+    def backward(self, dy, x, weight, **kw):
+        return list(super().backward(dy, x, weight, **kw).values())

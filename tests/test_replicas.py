@@ -191,6 +191,12 @@ def test_a_kernel_child_does_not_outlive_the_case():
     assert not _alive(pid)
 
 
+def test_a_return_that_is_not_a_dict_is_an_error_naming_the_entry():
+    res = _run("ReturnsAList", CASES[0])
+    assert res.status == "error"
+    assert "failed in backward: TypeError: backward returned list, expected a dict with dx, dweight, dbias" in res.message
+
+
 def test_unloadable_kernel_is_an_error_not_an_exception():
     res = run_replica_case(ReplicaKernel(name="missing", spec="replica_kernels:NoSuchKernel"), CASES[0])
     assert res.status == "error" and "loading the kernel" in res.message and "NoSuchKernel" in res.message

@@ -384,6 +384,9 @@ def run_replica_case(kernel: ReplicaKernel, case: ReplicaCase, seed: int = 0) ->
         return CaseResult(id=case.id, case=case.as_dict(), status="error", message=f"harness error: {e}")
     t1 = time.perf_counter()
     outs, status, message = _gather(kernel, case, work)
+    if outs is None and "failed in joining the process group" in message:
+        # the free port may have been taken between choosing it and binding it: one more try on another
+        outs, status, message = _gather(kernel, case, work)
     t2 = time.perf_counter()
     if outs is None:
         return CaseResult(id=case.id, case=case.as_dict(), status=status, message=message,
