@@ -49,6 +49,7 @@ from ..cases.generators import make_inputs
 from ..cases.model import Case
 from ..compare import compare_output, unread_output
 from ..kernel import Conventions, Precision
+from ..ops.replica_batch_norm import BASE, NAME
 from ..results import CaseResult, cap_text
 from ..tolerances.bound import Bound
 from ..tolerances.bounds import derive_bounds, output_dtype
@@ -57,7 +58,7 @@ from . import isolation
 __all__ = ["ReplicaKernel", "ReplicaCase", "Collectives", "CollectiveError", "run_replica_case",
            "replica_cases", "merge_bound", "OP"]
 
-OP = "replica_batch_norm"
+OP = NAME
 #: Outputs compared per replica: its y and dx shares, and the global ones every replica returns.
 FORWARD_OUTPUTS = ("y", "mean", "rstd")
 RUNNING = ("running_mean", "running_var")
@@ -101,14 +102,14 @@ class ReplicaKernel:
 
 @dataclass(frozen=True)
 class ReplicaCase:
-    """A batch norm case of the global batch (``base``, op "batch_norm") split into ``shards`` samples per replica."""
+    """A batch norm case of the global batch (``base``, op BASE.name) split into ``shards`` samples per replica."""
 
     base: Case
     shards: tuple[int, ...]
 
     def __post_init__(self) -> None:
-        if self.base.op != "batch_norm" or self.base.mode != "train" or self.base.strides != "contiguous":
-            raise ValueError(f"base is {self.base.id}, expected a contiguous batch_norm case in train mode")
+        if self.base.op != BASE.name or self.base.mode != "train" or self.base.strides != "contiguous":
+            raise ValueError(f"base is {self.base.id}, expected a contiguous {BASE.name} case in train mode")
         if not (2 <= len(self.shards) <= 8) or any(not isinstance(n, int) or n < 1 for n in self.shards):
             raise ValueError(f"shards is {self.shards!r}, expected 2..8 sample counts >= 1")
         if sum(self.shards) != self.base.shape[0]:
@@ -135,7 +136,7 @@ def replica_cases(dtype: str = "float32") -> list[ReplicaCase]:
     def case(shape, layout, values="normal", running=False):
         if layout == "channels_last":
             shape = (shape[0],) + shape[2:] + (shape[1],)
-        return Case(op="batch_norm", dtype=dtype, shape=shape, layout=layout, values=values, running=running)
+        return Case(op=BASE.name, dtype=dtype, shape=shape, layout=layout, values=values, running=running)
     return [
         ReplicaCase(case((5, 3, 4, 4), "channels_first", running=True), (2, 3)),
         ReplicaCase(case((6, 3, 4, 4), "channels_last"), (1, 4, 1)),
