@@ -5,6 +5,12 @@ norm with float16 storage and float32 accumulation. Draft 1 computes the
 variance in one pass; refnorm fails it on the cancellation cases and says which
 output, which case and by how much. Draft 2 computes it in two passes and passes.
 
+Part two (examples/kestrel_fused.py): the team fuses the residual add, RMS norm and a per-token
+float8_e4m3fn cast of y for the next matrix multiply. Draft 1 normalizes the float32 sum while it
+stores (and declares) the bfloat16 h; refnorm fails it on the saved rstd, which the backward
+reuses, although the float8 levels of y hide most of the difference. Draft 2 normalizes the stored
+h and passes.
+
 Where a C compiler built examples/c_kernel, the demo also checks that hand-written
 C layer norm through the C ABI adapter; otherwise it says so and goes on.
 """
@@ -25,6 +31,7 @@ from conformance.run import RunOptions, run_check  # noqa: E402
 from conformance.summary import summary_table  # noqa: E402
 
 DRAFTS = HERE / "kestrel_drafts.py"
+FUSED = HERE / "kestrel_fused.py"
 
 
 def _rel(p: Path) -> str:
@@ -95,9 +102,11 @@ def main(argv: list[str] | None = None) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     print("The Kestrel NPU team ports layer norm and batch norm: float16 storage, float32 accumulation,")
-    print("float32 weights and statistics. refnorm checks each draft against its float64 oracle.")
+    print("float32 weights and statistics; then a fused residual add + RMS norm whose output goes to")
+    print("float8_e4m3fn with one scale per token. refnorm checks each draft against its float64 oracle.")
     specs = [f"{DRAFTS}:{name}" for name in
              ("layer_norm_draft1", "batch_norm_draft1", "layer_norm_draft2", "batch_norm_draft2")]
+    specs += [f"{FUSED}:{name}" for name in ("add_rms_norm_fp8_draft1", "add_rms_norm_fp8_draft2")]
     c_kernel = HERE / "c_kernel" / "kernel.py"
     verdicts = {}
     for spec in specs:
@@ -117,7 +126,8 @@ def main(argv: list[str] | None = None) -> int:
     print(f"\nresults and reports: {_rel(out)}/")
     print("note: " + CAUTION)
     expected = {"kestrel layer_norm draft 1": "not conformant", "kestrel batch_norm draft 1": "not conformant",
-                "kestrel layer_norm draft 2": "conformant", "kestrel batch_norm draft 2": "conformant"}
+                "kestrel layer_norm draft 2": "conformant", "kestrel batch_norm draft 2": "conformant",
+                "kestrel add_rms_norm fp8 draft 1": "not conformant", "kestrel add_rms_norm fp8 draft 2": "conformant"}
     surprises = [n for n, v in expected.items() if verdicts.get(n) != v]
     if surprises:
         print(f"demo: unexpected verdicts for {', '.join(surprises)}", file=sys.stderr)

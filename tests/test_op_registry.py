@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-import refnorm
+from described_kernels import rounded_oracle
 import pytest
 
 from conformance import dtypes, ops
@@ -198,36 +198,8 @@ def test_bounds_exist_for_every_output(name):
 
 # ------------------------------------------------------------------ a run and its report
 def _oracle_kernel(spec, dtype):
-    """A kernel from the description alone: the oracle's values rounded to the storage dtype (a correctly
-    rounded result, within any bound of at least one unit roundoff: Higham 2002, §2.2, eq. 2.4)."""
-    st = dtypes.dtype_of(dtype)
-
-    def rnd(a):
-        return None if a is None else np.asarray(a).astype(st)
-
-    def up(kw):
-        return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
-
-    def h_of(kw):
-        # a fused residual add: the description's functions normalize h, the sum rounded once to storage
-        return refnorm.residual_stream(kw["x"], kw["residual"], kw.get("residual_bias"), h_format=dtype)[1]
-
-    def forward(**kw):
-        kw = up(kw)
-        if spec.residual:
-            h = h_of(kw)
-            return rnd(call_with(spec.forward, {**kw, "x": h}).y), rnd(h)
-        return rnd(call_with(spec.forward, kw).y)
-
-    def backward(**kw):
-        kw = up(kw)
-        g = call_with(spec.backward, {**kw, "x": h_of(kw)} if spec.residual else kw)
-        dx = g.dx + kw["dh"] if spec.residual else g.dx
-        return rnd(dx), rnd(g.dweight), rnd(g.dbias)
-
-    entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
-    return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False,
-                  outputs=("y", *spec.residual_outputs), **entries)
+    """The rounded oracle of the description (tests/described_kernels.py)."""
+    return rounded_oracle(spec, dtype)
 
 
 @pytest.mark.parametrize("name", NAMES)

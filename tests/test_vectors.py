@@ -712,24 +712,11 @@ def test_load_manifest_refuses_a_folder_without_one(tmp_path):
 
 # ------------------------------------------------------------------ every op: score equals check
 def _rounded_oracle(spec, dtype: str):
-    """A kernel of any registered op: the oracle's values rounded to the storage format (correctly
-    rounded: Higham 2002, §2.2), the outputs a perfect target writes from the stored expected values."""
-    from conformance.kernel import Kernel, call_with
+    """A kernel of any registered op: the oracle's values rounded to the storage format
+    (tests/described_kernels.py), the outputs a perfect target writes from the stored expected values."""
+    from described_kernels import rounded_oracle
 
-    fmt = dtypes.dtype_of(dtype)
-
-    def up(kw):
-        return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
-
-    def forward(**kw):
-        return np.asarray(call_with(spec.forward, up(kw)).y).astype(fmt)
-
-    def backward(**kw):
-        g = call_with(spec.backward, up(kw))
-        return tuple(np.asarray(a).astype(fmt) for a in (g.dx, g.dweight, g.dbias))
-
-    entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
-    return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False, **entries)
+    return rounded_oracle(spec, dtype)
 
 
 @pytest.mark.parametrize("op", ops.OPS)
