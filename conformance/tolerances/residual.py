@@ -35,6 +35,7 @@ from ..cases.model import Case
 from ..kernel import Conventions, Precision
 from .bound import Bound
 from .bounds import finish_bound
+from .stats import eta
 
 __all__ = ["derive_fused_bounds", "h_rounds_once"]
 
@@ -51,6 +52,12 @@ def h_rounds_once(storage: str, add_format: str) -> bool:
     return p_a >= 2 * p_s + 2
 
 
+def _floor(p: Precision, fmt: str) -> float:
+    """One rounding's absolute error near zero in ``fmt``: eta (stats.py), or the smallest normal value
+    where subnormals are flushed (as bounds._Context.floor)."""
+    return float(dtypes.finfo(fmt).smallest_normal) if p.subnormals == "flush" else eta(fmt)
+
+
 def _h_errors(p: Precision, view: dict[str, Any]) -> tuple[np.ndarray, str]:
     """|fl_h(sum) - sum| bound before the rounding to storage, and its formula."""
     u_h = dtypes.unit_roundoff(p.accumulate_for("h"))
@@ -61,8 +68,7 @@ def _h_errors(p: Precision, view: dict[str, Any]) -> tuple[np.ndarray, str]:
         if u_h > dtypes.unit_roundoff(p.storage):
             # the add's format is narrower than storage: each input is rounded into it first (u_cv)
             # (and an input below the add format's range becomes 0 or a subnormal of it: 4 eta_h)
-            fh = dtypes.finfo(p.accumulate_for("h"))
-            eta_h = float(fh.smallest_normal) if p.subnormals == "flush" else float(fh.smallest_subnormal) / 2.0
+            eta_h = _floor(p, p.accumulate_for("h"))
             cv = u_h * (np.abs(x) + np.abs(r) + (0.0 if rb is None else np.abs(np.asarray(rb, np.float64)))) \
                 + 4.0 * eta_h
             cv_t = (" + u_h (|x| + |residual|" + ("" if rb is None else " + |residual_bias|")
@@ -98,9 +104,7 @@ def derive_fused_bounds(case: Case, precision: Precision, conventions: Conventio
         norm_expected["dx"] = np.asarray(expected["dx"], np.float64) - dh
     out = derive(case, precision, conventions, ops.base_inputs(view), norm_expected, errs or None) \
         if norm_expected else {}
-    u_s, eta_s = dtypes.unit_roundoff(p.storage), float(dtypes.finfo(p.storage).smallest_subnormal) / 2.0
-    if p.subnormals == "flush":
-        eta_s = float(dtypes.finfo(p.storage).smallest_normal)
+    u_s, eta_s = dtypes.unit_roundoff(p.storage), _floor(p, p.storage)
     if "h" in expected:
         e = np.asarray(expected["h"], np.float64)
         with np.errstate(invalid="ignore", over="ignore"):
