@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
 from typing import Any
 
@@ -155,8 +156,10 @@ def _running(case: Case, x: np.ndarray, rng: np.random.Generator, params: str) -
         return _at_mean_stats(case, rng), np.ones(c)
     ax = case.channel_axis
     xm = np.moveaxis(np.where(np.isfinite(x), x, 0.0), ax, 0).reshape(c, -1)
-    mean = xm.mean(axis=1)
-    var = xm.var(axis=1)
+    # correctly rounded sums (math.fsum): NumPy's reductions add in an order that follows the CPU's
+    # vector width, and these values are part of each case's data, the same on every machine
+    mean = np.array([math.fsum(r) for r in xm]) / xm.shape[1]
+    var = np.array([math.fsum(d * d) for d in xm - mean[:, None]]) / xm.shape[1]
     scale = np.sqrt(var) + 1e-3
     if kind == "far":
         rm = mean + 32.0 * scale * rng.standard_normal(c)
