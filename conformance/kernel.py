@@ -21,6 +21,7 @@ from . import ops as _ops
 from .ops import GRADS, OPS, RUNNING_OUTPUTS, SAVED_FORMS, STATISTICS
 from .ops.spec import H_FORMATS, RESIDUAL_OUTPUTS
 from .quantization import Quantization, check_declaration as _check_quantization, quant_outputs
+from refnorm.replicas import PARAM_GRAD_MODES
 
 __all__ = [
     "OPS",
@@ -152,6 +153,9 @@ class Conventions:
         normalized as the accumulation format holds it; backward recomputes it from x and residual).
     weight_offset : RMS norm and residual add + RMS norm: the scale is weight_offset + weight, with
         the weight stored centred at zero (1: y = x r (1 + weight)); 0 for the usual weight.
+    param_grads : multi-replica ops: "reduced" (each replica returns dweight, dbias summed over
+        every replica: what an all-reduce of the gradients gives, torch DDP's usual result, from
+        memory) or "local" (its own shard's sums, left to the framework to reduce).
     """
 
     momentum_convention: str = "new"
@@ -162,6 +166,7 @@ class Conventions:
     y_form: str = "centred"
     h_format: str = "storage"
     weight_offset: float = 0.0
+    param_grads: str = "reduced"
 
     def as_dict(self) -> dict[str, Any]:
         return {f.name: (list(getattr(self, f.name)) if f.name == "saved" else getattr(self, f.name))
@@ -191,6 +196,14 @@ class Kernel:
     Precision applies to every dtype in ``dtypes``).
     ``device`` is where the kernel runs, as its library names it (torch's "cpu" or "cuda:0",
     an ONNX Runtime execution provider); None when not declared (a host-side kernel).
+    ``source`` is the spec load_kernel loaded it from; a multi-replica kernel's replicas (one new
+    process each) load it from there, or receive it pickled when it has none.
+
+    A multi-replica op (replica_batch_norm: conformance.run.replicas) is called per replica as
+    forward(x, weight, bias, *, rank, world_size, comm, axis, eps, running_mean, running_var,
+    momentum) -> {"y", "mean", "rstd"[, "running_mean", "running_var"]} and backward(dy, x, weight,
+    *, rank, world_size, comm, mean, rstd, axis, eps) -> {"dx", "dweight", "dbias"}, with x and dy
+    the replica's shard.
     """
 
     name: str
@@ -213,6 +226,7 @@ class Kernel:
     notes: str = ""
     device: str | None = None
     quantization: Quantization | None = None  # a quantized y (conformance.quantization); None: y as is
+    source: str | None = None  # the spec it was loaded from (load_kernel): how a new process loads it again
 
     def __post_init__(self) -> None:
         _validate(self)
@@ -328,6 +342,16 @@ def _validate(k: Kernel) -> None:
             bad(f"conventions.saved has {s!r}, expected names from {', '.join(allowed_saved)}")
     if "mean" in c.saved and "mean" not in spec.saved:
         bad(f"{k.op} has no mean to save; remove 'mean' from conventions.saved")
+    pg = c.param_grads
+    if not isinstance(pg, str) or pg not in PARAM_GRAD_MODES:
+        bad(f"conventions.param_grads is {pg!r}, expected {' or '.join(map(repr, PARAM_GRAD_MODES))}")
+    if pg != "reduced" and not spec.replicas:
+        bad(f"conventions.param_grads is {pg!r}, but {k.op} runs in one process (param_grads is for "
+            f"{', '.join(n for n, s in _ops.SPECS.items() if s.replicas)})")
+    if k.source is not None and not (isinstance(k.source, str) and ":" in k.source):
+        bad(f"source is {k.source!r}, expected the 'module:attr' spec it is loaded from, or None")
+    if spec.replicas:
+        _check_replicas(k, bad)
     _check_outputs(k, bad)
     if (k.backward or k.backward_eval) and not k.grads:
         bad("grads is empty, but the kernel has a backward entry point: name what it returns, from "
@@ -336,6 +360,29 @@ def _validate(k: Kernel) -> None:
         if g not in GRADS:
             bad(f"grads has {g!r}, expected names from {', '.join(GRADS)}")
     _check_precision(k, bad)
+
+
+def _check_replicas(k: Kernel, bad: Callable[[str], None]) -> None:
+    """A multi-replica kernel: the fixed calls of conformance.run.replicas (torch's conventions,
+    the mean and rstd saved, a forward and a backward per replica, training mode)."""
+    c = k.conventions
+    if k.forward is None or k.backward is None or k.forward_eval or k.backward_eval:
+        bad(f"{k.op} kernels have a forward and a backward (each replica runs both) and no eval entry points "
+            f"(eval mode is {k.op}'s single-process op's: declare a kernel of that op for it)")
+    fixed = {"momentum_convention": "new", "running_var_estimator": "unbiased", "eps_placement": "inside",
+             "running": "return", "y_form": "centred"}
+    for f, v in fixed.items():
+        if getattr(c, f) != v:
+            bad(f"conventions.{f} is {getattr(c, f)!r}; {k.op} replicas are checked with {f}={v!r} only")
+    if tuple(c.saved) != ("mean", "rstd"):
+        bad(f"conventions.saved is {tuple(c.saved)}, expected ('mean', 'rstd'): each replica's forward returns "
+            "them and its backward receives them")
+    want = ("y", "mean", "rstd") + (RUNNING_OUTPUTS if k.updates_running else ())
+    if tuple(k.outputs) != want or tuple(k.grads) != GRADS:
+        bad(f"outputs {tuple(k.outputs)} and grads {tuple(k.grads)}: a {k.op} kernel returns outputs={want} "
+            f"(running statistics with updates_running=True) and grads={GRADS}")
+    if k.quantization is not None:
+        bad(f"{k.op} has no quantized output (quantization is for the single-process ops)")
 
 
 def _names(obj: Any, field_name: str, value: Any, bad: Callable[[str], None]) -> None:
@@ -446,7 +493,7 @@ def unchecked_outputs(k: Kernel) -> list[dict[str, Any]]:
     def add(name: str, modes: tuple[str, ...], reason: str) -> None:
         out.append({"output": name, "modes": list(modes), "reason": reason})
 
-    modes = ("train", "eval") if running_op else ("train",)
+    modes = ("train", "eval") if running_op and not _ops.get(k.op).replicas else ("train",)
     fwd = {"train": k.forward, "eval": k.forward_eval}
     bwd = {"train": k.backward, "eval": k.backward_eval}
     entry = {"train": ("forward", "backward"), "eval": ("forward_eval", "backward_eval")}
@@ -604,4 +651,4 @@ def load_kernel(spec: str) -> Kernel:
     if not isinstance(obj, Kernel):
         raise KernelError(f"kernel spec {spec!r}: {attr} is {type(obj).__name__}, expected a "
                           "conformance.Kernel or a function returning one")
-    return obj
+    return obj if obj.source is not None else replace(obj, source=spec)

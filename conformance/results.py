@@ -99,10 +99,18 @@ def as_float(v: Any) -> float:
     return float(v) if v is not None else float("nan")
 
 
+def output_of(name: str) -> str:
+    """The output an output record's name reports: "replica 2: dx" (a multi-replica case compares each
+    replica's share, conformance.run.replicas) reports dx; other names are the output itself."""
+    head, sep, rest = name.partition(": ")
+    return rest if sep and head.startswith("replica ") and head[8:].isdigit() else name
+
+
 def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
     """Rows per (op, dtype, output): cases run, passed, failed, crashed (incl. timeouts and errors),
     the worst fraction of the bound used and its case id. Crashed cases count once per op and dtype
-    under output "*"."""
+    under output "*". A multi-replica case's records of one output (one per replica) count as one:
+    failed when one replica's is, its worst budget the replicas' largest."""
     rows: dict[tuple[str, str, str], dict[str, Any]] = {}
 
     def row(op: str, dt: str, out: str) -> dict[str, Any]:
@@ -123,21 +131,25 @@ def summarize(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
             r["crashed"] += 1
             r["worst_case"] = r["worst_case"] or c.id
             continue
+        per_output: dict[str, list[dict[str, Any]]] = {}
         for o in c.outputs:
-            r = row(op, dt, o["name"])
+            per_output.setdefault(output_of(o["name"]), []).append(o)
+        for name, records in per_output.items():
+            r = row(op, dt, name)
             r["cases"] += 1
-            if not o["passed"]:
+            if not all(o["passed"] for o in records):
                 r["failed"] += 1
-            elif o.get("inconclusive") and not o.get("accepted_inconclusive"):
+            elif any(o.get("inconclusive") and not o.get("accepted_inconclusive") for o in records):
                 r["inconclusive"] += 1
             else:
                 r["passed"] += 1
-            b = as_float(o.get("budget_used", 0.0))
-            if b > r["worst_budget"] or r["worst_case"] is None:
-                r["worst_budget"], r["worst_case"] = b, c.id
-            r["max_abs"] = max(r["max_abs"], as_float(o.get("max_abs", 0.0)))
-            r["max_rel"] = max(r["max_rel"], as_float(o.get("max_rel", 0.0)))
-            r["max_ulp"] = max(r["max_ulp"], int(o.get("max_ulp", 0) or 0))
+            for o in records:
+                b = as_float(o.get("budget_used", 0.0))
+                if b > r["worst_budget"] or r["worst_case"] is None:
+                    r["worst_budget"], r["worst_case"] = b, c.id
+                r["max_abs"] = max(r["max_abs"], as_float(o.get("max_abs", 0.0)))
+                r["max_rel"] = max(r["max_rel"], as_float(o.get("max_rel", 0.0)))
+                r["max_ulp"] = max(r["max_ulp"], int(o.get("max_ulp", 0) or 0))
     order = {"y": 0, "h": 0.5, "mean": 1, "rstd": 2, "var": 2, "var_unbiased": 2, "std": 2, "running_mean": 3,
              "running_var": 4, "dx": 5, "dweight": 6, "dbias": 7, "*": 9}
     return [_jsonable(rows[k]) for k in sorted(rows, key=lambda k: (k[0], k[1], order.get(k[2], 8), k[2]))]
@@ -175,7 +187,7 @@ def accept_inconclusive(cases: list[CaseResult], names: Iterable[str]) -> list[C
         if c.status == "inconclusive":
             outs = [dict(o) for o in c.outputs]
             for o in outs:
-                if o.get("inconclusive") and o["name"] in names:
+                if o.get("inconclusive") and output_of(o["name"]) in names:
                     o["accepted_inconclusive"] = True
             if all(o.get("accepted_inconclusive") for o in outs if o.get("inconclusive")):
                 c = CaseResult(**{**asdict(c), "outputs": outs, "status": "passed"})

@@ -200,3 +200,17 @@ class ReturnsAList(ReplicaNorm):
 
     def backward(self, dy, x, weight, **kw):
         return list(super().backward(dy, x, weight, **kw).values())
+
+
+def as_kernel(bug: str = "ReplicaNorm", param_grads: str = ""):
+    """One of the kernels above as a conformance.Kernel of the registered op (spec
+    ``tests/replica_kernels.py:as_kernel?bug=AveragedVariances``), declared with its own param_grads."""
+    from conformance.kernel import Conventions, Kernel
+
+    cls = globals().get(bug)
+    if not (isinstance(cls, type) and issubclass(cls, ReplicaNorm)):
+        raise ValueError(f"bug is {bug!r}, expected a ReplicaNorm class of tests/replica_kernels.py")
+    obj = cls()
+    return Kernel(name=f"replica {bug}", op="replica_batch_norm", forward=obj.forward, backward=obj.backward,
+                  outputs=("y", "mean", "rstd", "running_mean", "running_var"), dtypes=("float32",),
+                  conventions=Conventions(saved=("mean", "rstd"), param_grads=param_grads or cls.param_grads))

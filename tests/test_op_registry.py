@@ -140,6 +140,18 @@ def test_kernel_checks_accept_a_minimal_and_a_full_declaration(name):
     def f(**kw):
         return kw["x"]
 
+    if spec.replicas:
+        # each replica runs a forward and a backward with fixed outputs (conformance.run.replicas)
+        with pytest.raises(KernelError, match="have a forward and a backward"):
+            Kernel(name="minimal", op=name, forward=f)
+        with pytest.raises(KernelError, match="expected \\('mean', 'rstd'\\)"):
+            Kernel(name="unsaved", op=name, forward=f, backward=f, updates_running=False)
+        full = Kernel(name="full", op=name, outputs=("y", "mean", "rstd") + spec.running_outputs, forward=f,
+                      backward=f, conventions=Conventions(saved=("mean", "rstd"), param_grads="local"))
+        assert full.entry_points == spec.entry_points == ("forward", "backward")
+        return
+    with pytest.raises(KernelError, match="param_grads is 'local', but"):
+        Kernel(name="local", op=name, forward=f, updates_running=False, conventions=Conventions(param_grads="local"))
     if spec.running_outputs:
         # A forward that returns running statistics must list them (conformance.kernel: never unchecked in silence).
         with pytest.raises(KernelError, match="they would go unchecked"):

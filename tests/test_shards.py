@@ -88,7 +88,9 @@ def test_the_cut_is_the_same_in_a_fresh_interpreter_with_another_hash_seed():
     assert json.loads(out.stdout) == here
 
 
-@pytest.mark.parametrize("op", ops.OPS)
+# A multi-replica op's tier is a few cases, each costing whole processes: max(mean, largest case) is
+# no reachable target for so few items (three equal long cases on two shards), so it is left out here.
+@pytest.mark.parametrize("op", [n for n in ops.OPS if not ops.get(n).replicas])
 def test_the_largest_shard_is_within_two_percent_of_the_best_cut(op):
     for dts in (("float32",), FORMATS):
         cases = standard(op, dts)
@@ -270,3 +272,11 @@ def test_a_bad_durations_file_is_refused_before_the_run(extra, words, capsys):
     err = capsys.readouterr().err
     assert rc == 2 and "Traceback" not in err, err
     assert all(w in err for w in words), err
+
+
+def test_a_multi_replica_case_costs_its_processes():
+    # cost = passes (numel + OVERHEAD) + replicas REPLICA_START (conformance/run/shards.py, COST_MODEL)
+    from conformance.run.shards import OVERHEAD, REPLICA_START
+
+    for c in [c for n in ops.OPS if ops.get(n).replicas for c in standard(n, ("float32",))]:
+        assert case_cost(c) == 2 * (c.numel + OVERHEAD) + len(c.shards) * REPLICA_START, c.id

@@ -17,6 +17,8 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
+import subprocess
+import sys
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
@@ -30,7 +32,7 @@ from conformance.cases import find_case
 from conformance.cases.generators import make_inputs
 from conformance.cli import main
 from conformance.kernel import Precision
-from conformance.vectors.manifest import SCHEMA, VectorsError, load_manifest, parse_manifest
+from conformance.vectors.manifest import EXPORTABLE_OPS, SCHEMA, VectorsError, load_manifest, parse_manifest
 from conformance.vectors.npy import LIMITS, NpyError, decode, encode, read_npy, stored_dtype, write_npy
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -719,7 +721,7 @@ def _rounded_oracle(spec, dtype: str):
     return rounded_oracle(spec, dtype)
 
 
-@pytest.mark.parametrize("op", ops.OPS)
+@pytest.mark.parametrize("op", EXPORTABLE_OPS)
 def test_for_every_op_score_of_a_perfect_target_is_check_of_the_rounded_oracle(tmp_path, op):
     # The same checked outputs, the same bounds and the same comparison: the records are equal field
     # for field (durations aside), so nothing in export or score depends on which op it is.
@@ -738,3 +740,20 @@ def test_for_every_op_score_of_a_perfect_target_is_check_of_the_rounded_oracle(t
         want = execute_case(kernel, c, 0).to_dict()
         assert got["id"] == want["id"] and got["status"] == want["status"] == "passed", want["message"]
         assert got["outputs"] == want["outputs"], c.id
+
+
+def test_a_multi_replica_kernel_has_no_vectors(tmp_path):
+    # Vectors hold one process's calls (docs/vectors.md); a multi-replica kernel needs the harness's process
+    # group, so export refuses it by name and writes nothing, and the CLI does not offer the op.
+    from conformance.cases import catalog
+    from conformance.vectors.export import export_vectors
+
+    replica = [n for n in ops.OPS if ops.get(n).replicas]
+    assert replica and not set(replica) & set(EXPORTABLE_OPS)
+    kernel = _rounded_oracle(ops.get(replica[0]), "float32")
+    with pytest.raises(VectorsError, match="run as replicas over a process group"):
+        export_vectors(kernel, catalog(replica, ["float32"], "smoke"), tmp_path, seed=0, tier="smoke", quiet=True)
+    assert not any(tmp_path.iterdir())
+    r = subprocess.run([sys.executable, "-m", "conformance", "export", "--op", replica[0], "--dtype", "float32",
+                        "--out", str(tmp_path / "v")], capture_output=True, text=True, timeout=120)
+    assert r.returncode == 2 and "invalid choice" in r.stderr and not (tmp_path / "v").exists()

@@ -1,7 +1,10 @@
 """Synchronized batch norm composed of torch CPU ops, as a multi-replica kernel under test.
 
-Spec form: ``conformance.adapters.torch_replicas:composition`` (a factory; torch is imported
-in each replica when it is called). It needs the harness's collectives (conformance.run.replicas).
+Spec forms: ``conformance.adapters.torch_replicas:kernel`` (a conformance.Kernel of op
+replica_batch_norm, for ``refnorm check``, the pytest plugin and the report; each replica loads it
+from that spec) and ``conformance.adapters.torch_replicas:composition`` (the bare object of a
+conformance.run.replicas.ReplicaKernel). torch is imported in each replica when it first calls it.
+It needs the harness's collectives (conformance.run.replicas).
 
 torch's own cross-replica primitives do not run on the CPU (checked here, torch 2.13):
 ``torch.nn.SyncBatchNorm`` raises "SyncBatchNorm expected input tensor to be on GPU or XPU ..."
@@ -28,7 +31,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["composition", "TorchReplicaComposition"]
+__all__ = ["composition", "kernel", "TorchReplicaComposition"]
 
 
 class TorchReplicaComposition:
@@ -97,3 +100,32 @@ class TorchReplicaComposition:
 def composition() -> Any:
     """A TorchReplicaComposition (imports torch)."""
     return TorchReplicaComposition()
+
+
+_ONE: list[TorchReplicaComposition] = []
+
+
+def _composition() -> TorchReplicaComposition:
+    if not _ONE:  # one per replica process, made on its first call (torch is imported then)
+        _ONE.append(TorchReplicaComposition())
+    return _ONE[0]
+
+
+def _forward(x, weight, bias, **kw):
+    return _composition().forward(x, weight, bias, **kw)
+
+
+def _backward(dy, x, weight, **kw):
+    return _composition().backward(dy, x, weight, **kw)
+
+
+def kernel():
+    """The composition as a conformance.Kernel of op replica_batch_norm (float32 and float64 storage,
+    the dweight/dbias sums reduced over every replica)."""
+    from ..kernel import Conventions, Kernel
+
+    return Kernel(name="torch CPU composition (multi-replica)", op="replica_batch_norm", forward=_forward,
+                  backward=_backward, outputs=("y", "mean", "rstd", "running_mean", "running_var"),
+                  dtypes=("float32", "float64"), conventions=Conventions(saved=("mean", "rstd")),
+                  momentum_none=False,
+                  notes="SyncBatchNorm's algorithm composed of torch CPU ops (SyncBatchNorm refuses the CPU)")

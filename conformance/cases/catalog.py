@@ -143,6 +143,30 @@ def _residual_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
     yield replace(_base(spec, dtype, shape, layout, k, tier), residual_bias=True)
 
 
+#: Multi-replica shard plans per tier: (shape (channels first), layout, shards, values, running).
+#: R = 2..4, unequal shards, one-sample shards, both layouts, the standard tier's cancellation
+#: values and its long reduction (2^20 elements per channel, batch norm's (16, 2, 256, 256)).
+_REPLICA_PLANS = {
+    "smoke": (((4, 3, 2, 2), "channels_first", (1, 3), "normal", False),
+              ((5, 3, 4, 4), "channels_first", (2, 3), "normal", True),
+              ((6, 3, 4, 4), "channels_last", (1, 4, 1), "normal", False)),
+    "standard": (((10, 4, 3, 5), "channels_first", (1, 2, 3, 4), "cancellation", True),
+                 ((4, 2, 3, 3), "channels_last", (1, 1, 1, 1), "normal", True),
+                 ((16, 2, 256, 256), "channels_first", (5, 11), "normal", False)),
+    "exhaustive": (((7, 5, 3, 3), "channels_last", (3, 1, 3), "cancellation", True),
+                   ((9, 3, 2, 2), "channels_first", (1, 8), "normal", True),
+                   ((3, 4, 5), "channels_first", (1, 2), "normal", False)),
+}
+
+
+def _replica_cases(spec: OpSpec, dtype: str, tier: str) -> Iterator[Case]:
+    """A multi-replica op's tier: the plans of the tiers up to this one."""
+    for t in TIERS[:TIERS.index(tier) + 1]:
+        for shape, layout, shards, values, running in _REPLICA_PLANS[t]:
+            yield replace(_base(spec, dtype, shape, layout, 1, tier), values=values, running=running,
+                          shards=shards)
+
+
 # ---------------------------------------------------------------- tiers
 def _smoke(spec: OpSpec, dtype: str) -> Iterator[Case]:
     yield from _shape_cases(spec, dtype, "smoke")
@@ -194,10 +218,10 @@ def catalog(ops: Iterable[str], dtypes: Iterable[str], tier: str = "standard", q
     seen: dict[str, Case] = {}
     for spec in specs:
         for dt in dtypes:
-            for c in gen(spec, dt):
+            for c in (_replica_cases(spec, dt, tier) if spec.replicas else gen(spec, dt)):
                 if _valid(c) and c.id not in seen:
                     seen[c.id] = c
-            if quantized:
+            if quantized and not spec.replicas:
                 from ..quantized import quantized_cases
 
                 shape, k = spec.shapes.long

@@ -29,7 +29,7 @@ STRIDE_KINDS = ("contiguous", "transposed", "sliced", "reversed", "channels_last
 
 #: Case fields that results documents and catalogs written before them do not have, with their
 #: defaults: ``as_dict`` leaves a field out at its default, so those documents' cases read the same.
-_LATER_FIELDS = {"residual_bias": False, "out": "", "scale": ""}
+_LATER_FIELDS = {"residual_bias": False, "out": "", "scale": "", "shards": ()}
 
 
 @dataclass(frozen=True)
@@ -57,6 +57,8 @@ class Case:
         scale mode ("tensor", "row", "static" chosen to fit, "static_overflow" chosen so that some
         values overflow); the id's last part ``out=<format>,scale=<mode>`` when set, and left out of
         as_dict when not (so that every unquantized case is as it was).
+    shards : a multi-replica op (conformance.run.replicas): the samples each replica holds, in rank
+        order, summing to shape[0]; the id's ``replicas=R,shards=n0+n1+...`` after the shape.
     """
 
     op: str
@@ -79,12 +81,15 @@ class Case:
     residual_bias: bool = False
     out: str = ""
     scale: str = ""
+    shards: tuple[int, ...] = ()
     tier: str = field(default="standard", compare=False)  # where the catalog lists it; not part of the id
 
     @property
     def id(self) -> str:
         """Readable stable id: op/dtype/layout/shape/values[/dy=]/w=/b=/eps=/mode[/running=][/momentum]/strides."""
         parts = [self.op, self.dtype, self.layout, "x".join(map(str, self.shape))]
+        if self.shards:
+            parts.append(f"replicas={len(self.shards)},shards={'+'.join(map(str, self.shards))}")
         if ops.get(self.op).axes.takes_groups:
             parts.append(f"groups={self.groups}")
         if self.norm_ndim:
@@ -142,6 +147,8 @@ class Case:
             if d[name] == default:  # fields added after results documents existed: written only when set
                 del d[name]
         d["shape"] = list(self.shape)
+        if "shards" in d:
+            d["shards"] = list(self.shards)
         d["id"] = self.id
         return d
 
@@ -149,4 +156,6 @@ class Case:
     def from_dict(cls, d: dict) -> "Case":
         fields = {k: v for k, v in d.items() if k in cls.__dataclass_fields__}
         fields["shape"] = tuple(fields["shape"])
+        if "shards" in fields:
+            fields["shards"] = tuple(fields["shards"])
         return cls(**fields)

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from datetime import date, datetime, timezone
 from typing import Any, Iterable, Sequence
 
-from ..results import BAD
+from ..results import BAD, output_of
 from .profile import Waiver
 
 __all__ = ["today_utc", "judge_case", "gate_outcome", "waiver_summary", "WaiverUse", "OUTCOMES"]
@@ -67,7 +67,7 @@ def judge_case(case: dict[str, Any], kernel_name: str, waivers: Sequence[Waiver]
         covering += whole
         if status == "failed":
             failed_outputs = [o["name"] for o in case.get("outputs", []) if not o.get("passed", False)]
-            per_output = {n: [w for w in active if w.output == n] for n in failed_outputs}
+            per_output = {n: [w for w in active if w.output == output_of(n)] for n in failed_outputs}
             for ws in per_output.values():
                 hit += [w for w in ws if w not in hit]
             if not whole and failed_outputs and not case.get("modified_inputs") and all(per_output.values()):

@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from . import add_layer_norm, add_rms_norm, batch_norm, group_norm, instance_norm, layer_norm, rms_norm
+from . import (add_layer_norm, add_rms_norm, batch_norm, group_norm, instance_norm, layer_norm, replica_batch_norm,
+               rms_norm)
 from .spec import OpSpec
 
 __all__ = ["OPS", "SPECS", "get", "find", "with_eval"]
@@ -16,6 +17,7 @@ SPECS: dict[str, OpSpec] = {s.name: s for s in (
     rms_norm.SPEC,
     add_layer_norm.SPEC,
     add_rms_norm.SPEC,
+    replica_batch_norm.SPEC,
 )}
 OPS: tuple[str, ...] = tuple(SPECS)
 
@@ -34,5 +36,5 @@ def get(name: str) -> OpSpec:
 
 
 def with_eval() -> tuple[str, ...]:
-    """The ops that have an eval mode with running statistics."""
-    return tuple(n for n, s in SPECS.items() if s.has_eval)
+    """The ops that have an eval mode with running statistics (a multi-replica op's is its base op's)."""
+    return tuple(n for n, s in SPECS.items() if s.has_eval and not s.replicas)

@@ -137,6 +137,9 @@ class OpSpec:
         it. ``forward``/``backward`` are then the normalization of h (conformance.ops.residual).
     weight_offsets : the op admits Conventions.weight_offset (scale by offset + weight, the weight
         stored centred at zero: RMS norm's variant in some models).
+    replicas : the batch is split across R replicas (conformance.run.replicas): a case is the op's
+        case of the global batch plus a shard plan (Case.shards); its kernel runs as R processes
+        with collectives, training mode only (``forward``/``backward`` are the global batch's oracle).
     """
 
     name: str
@@ -157,6 +160,7 @@ class OpSpec:
     running_value_kinds: tuple[str, ...] = RUNNING_VALUE_KINDS[1:]
     residual: bool = False
     weight_offsets: bool = False
+    replicas: bool = False
 
     @property
     def saved(self) -> tuple[str, ...]:
@@ -182,7 +186,9 @@ class OpSpec:
 
     @property
     def entry_points(self) -> tuple[str, ...]:
-        return ("forward", "forward_eval", "backward", "backward_eval") if self.has_eval else ("forward", "backward")
+        if self.has_eval and not self.replicas:
+            return ("forward", "forward_eval", "backward", "backward_eval")
+        return ("forward", "backward")
 
     def kwargs(self, case: Any) -> dict[str, Any]:
         """The structural keyword arguments of its entry points and oracle calls (axis, num_groups,

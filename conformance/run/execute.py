@@ -287,6 +287,10 @@ def _execute(kernel: Kernel, case: Case, seed: int,
     reason = skip_reason(kernel, case)
     if reason:
         return CaseResult(id=case.id, case=case.as_dict(), status="skipped", message=reason)
+    if ops.get(case.op).replicas:  # R processes over a process group, each given its shard
+        from .replicas import run_replica_case
+
+        return run_replica_case(kernel, case, seed, dict(overrides or {}))
     conv = kernel.conventions
     prec = kernel.precision_for(case.dtype)
     inp = make_inputs(case, prec, seed)

@@ -6,8 +6,9 @@ the N results documents back together into the document the unsharded run would 
 
 Expected cost of a case, in element passes (COST_MODEL)::
 
-    cost = passes(mode) * (numel(x) + OVERHEAD),   passes = 2 in train mode (forward and backward),
-                                                   1 in eval mode
+    cost = passes(mode) * (numel(x) + OVERHEAD) + replicas * REPLICA_START,
+           passes = 2 in train mode (forward and backward), 1 in eval mode,
+           replicas = the processes of a multi-replica case (0 for the others)
 
 OVERHEAD = 2**15 element passes stands for what a case costs whatever its size: a round trip to
 the worker process, input generation, the oracle's and the bounds' fixed costs. Measured on a
@@ -49,7 +50,7 @@ from typing import Any, Mapping, Sequence
 
 from ..cases.model import Case
 
-__all__ = ["RULE", "COST_MODEL", "OVERHEAD", "SLACK", "case_cost", "assign", "Shard", "cut", "selection_digest",
+__all__ = ["RULE", "COST_MODEL", "OVERHEAD", "REPLICA_START", "SLACK", "case_cost", "assign", "Shard", "cut", "selection_digest",
            "durations_of", "measured_costs", "read_durations", "shard_of", "shard_label", "shard_lines", "balance"]
 
 #: Name and version of the assignment rule and cost model; a merge refuses shards cut by another.
@@ -58,13 +59,17 @@ RULE = "refnorm.shards/1"
 OVERHEAD = 2 ** 15
 #: Capacity of a shard above the mean load, as a fraction (numerator, denominator): exact integers.
 SLACK = (1, 50)
-COST_MODEL = f"passes(mode) * (numel + {OVERHEAD}); passes: train 2, eval 1"
+#: Fixed cost of each replica process of a multi-replica case (start-up, imports, joining the process
+#: group): measured here at 1 to 2 s per replica on the 2-core machine, about 2**20 element passes.
+REPLICA_START = 2 ** 20
+COST_MODEL = (f"passes(mode) * (numel + {OVERHEAD}) + replicas * {REPLICA_START}; passes: train 2, eval 1; "
+              "replicas: 0 for a single-process case")
 
 
 def case_cost(case: Case) -> int:
     """Expected cost of running ``case``, in element passes (COST_MODEL)."""
     passes = 2 if case.mode == "train" else 1
-    return passes * (case.numel + OVERHEAD)
+    return passes * (case.numel + OVERHEAD) + len(case.shards) * REPLICA_START
 
 
 def _rank(case_id: str, count: int) -> list[int]:

@@ -18,8 +18,9 @@ from typing import Any, Sequence
 
 from .. import dtypes as _dtypes
 from ..cases import TIERS
-from ..kernel import ENTRY_POINTS, OPS, Conventions, Precision
+from ..kernel import ENTRY_POINTS, Conventions, Precision
 from ..options import DEFAULTS, number_type, tolerance_type
+from .manifest import EXPORTABLE_OPS
 
 __all__ = ["add_commands", "cmd_export", "cmd_score", "parse_precision", "parse_conventions"]
 
@@ -36,7 +37,7 @@ def add_commands(subparsers: Any) -> None:
         description="Write, per case, the inputs a kernel consumes, the oracle's float64 expected outputs and the "
                     "per-element bounds of the declared precision, with DIR/manifest.json describing every case "
                     "(docs/vectors.md).")
-    e.add_argument("--op", required=True, choices=OPS, help="the op")
+    e.add_argument("--op", required=True, choices=EXPORTABLE_OPS, help="the op (multi-replica ops have no vectors)")
     e.add_argument("--dtype", required=True, nargs="+", choices=_dtypes.FORMATS, help="storage dtypes")
     e.add_argument("--tier", choices=TIERS, help=f"catalog tier (default: {DEFAULTS['tier']})")
     e.add_argument("--case", action="append", default=[], metavar="ID", help="export only this case id (repeatable)")

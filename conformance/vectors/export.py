@@ -30,7 +30,7 @@ from ..tolerances.ranges import case_beyond_range
 from ..run.execute import (case_bounds, declared_outputs, given_saved, oracle_expected, skip_reason)
 from ..tolerances import output_dtype
 from ..tolerances.bound import json_number
-from .manifest import DIGEST, INDEX, MANIFEST, SCHEMA_NAME, SCHEMA_VERSION, digest_line
+from .manifest import DIGEST, EXPORTABLE_OPS, INDEX, MANIFEST, SCHEMA_NAME, SCHEMA_VERSION, VectorsError, digest_line
 from .npy import encode, stored_dtype, write_npy
 
 __all__ = ["target_kernel", "export_vectors", "memory_layout", "EXPORT_CAUTION"]
@@ -211,6 +211,9 @@ def export_vectors(kernel: Kernel, cases: Sequence[Case], folder: str | os.PathL
     """
     import warnings
 
+    if kernel.op not in EXPORTABLE_OPS:
+        raise VectorsError(f"kernel {kernel.name!r} is of op {kernel.op}, whose kernels run as replicas over a "
+                           f"process group: vectors hold one process's calls (ops: {', '.join(EXPORTABLE_OPS)})")
     d = Path(folder)
     w = _Writer(d)
     out = stream or sys.stderr

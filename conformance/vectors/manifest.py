@@ -39,8 +39,11 @@ from .npy import DESCRS, stored_dtype
 
 __all__ = ["SCHEMA", "SCHEMA_NAME", "SCHEMA_VERSION", "MANIFEST", "DIGEST", "INDEX", "MAX_MANIFEST",
            "INPUTS", "VectorsError", "Manifest", "CaseEntry", "OutputEntry", "FileRef", "load_manifest",
-           "verify_files", "sha256_file", "digest_line", "file_path"]
+           "verify_files", "sha256_file", "digest_line", "file_path", "EXPORTABLE_OPS"]
 
+#: The ops whose cases vectors can hold: one process's inputs and outputs (a multi-replica op's
+#: kernel needs the harness's process group and collectives: conformance.run.replicas).
+EXPORTABLE_OPS = tuple(n for n in ops.OPS if not ops.get(n).replicas)
 SCHEMA_NAME = "refnorm.vectors"
 SCHEMA_VERSION = 1
 MANIFEST = "manifest.json"
@@ -80,7 +83,7 @@ _KERNEL = {
     "type": "object",
     "required": ["name", "op", "entry_points", "outputs", "grads", "dtypes", "conventions", "precision"],
     "properties": {
-        "name": {"type": "string", "maxLength": 1000}, "op": {"enum": list(ops.OPS)},
+        "name": {"type": "string", "maxLength": 1000}, "op": {"enum": list(EXPORTABLE_OPS)},
         "entry_points": _array({"enum": list(ENTRY_POINTS)}, minItems=1),
         "outputs": _array({"enum": list(OUTPUTS)}), "grads": _array({"enum": list(ops.GRADS)}),
         "dtypes": _array(_FORMAT, minItems=1), "layouts": _array({"type": "string"}),
@@ -97,7 +100,7 @@ _CASE_RECORD = {
     "required": ["op", "dtype", "shape", "layout", "values", "weight", "bias", "eps", "mode", "running",
                  "momentum", "batches_seen", "strides", "groups", "norm_ndim", "id"],
     "properties": {
-        "op": {"enum": list(ops.OPS)}, "dtype": _FORMAT, "shape": _array(_DIM, maxItems=32),
+        "op": {"enum": list(EXPORTABLE_OPS)}, "dtype": _FORMAT, "shape": _array(_DIM, maxItems=32),
         "layout": {"type": "string"}, "values": {"type": "string"}, "weight": {"type": "string"},
         "bias": {"type": "string"}, "eps": {"type": "number", "minimum": 0}, "mode": {"enum": ["train", "eval"]},
         "running": {"type": "boolean"}, "momentum": {"type": ["number", "null"]},
@@ -164,7 +167,7 @@ SCHEMA: dict[str, Any] = {
         "schema": {"const": SCHEMA_NAME}, "schema_version": {"const": SCHEMA_VERSION},
         "refnorm": {"type": "string"}, "created": {"type": "string"}, "command": {"type": "string"},
         "seed": {"type": "integer", "minimum": 0, "maximum": 2 ** 63 - 1},
-        "tier": {"enum": list(TIERS) + ["selected"]}, "op": {"enum": list(ops.OPS)},
+        "tier": {"enum": list(TIERS) + ["selected"]}, "op": {"enum": list(EXPORTABLE_OPS)},
         "dtypes": _array(_FORMAT, minItems=1), "declaration": {"type": ["string", "null"]},
         "kernel": _KERNEL,
         "stored_formats": {"type": "object", "additionalProperties": {"enum": list(DESCRS)}},
