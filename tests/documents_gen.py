@@ -238,6 +238,12 @@ def _statuses_fixed(doc: dict[str, Any]) -> None:
 _WITHOUT_CASES = {**SCHEMA, "properties": {**SCHEMA["properties"], "cases": {"type": "array", "maxItems": 0}}}
 
 
+#: The ops whose case shape the schema asks to have a channel axis (its case_fields' if/then on op).
+_CHANNEL_OPS = tuple(op for c in _resolve("#/$defs/case_fields").get("allOf", [])
+                     if c["then"].get("properties", {}).get("shape", {}).get("minItems") == 2
+                     for op in c["if"]["properties"]["op"].get("enum", [c["if"]["properties"]["op"].get("const")]))
+
+
 @st.composite
 def results_documents(draw, link: bool = True) -> dict[str, Any]:
     """A results document the schema accepts; with ``link``, one shaped like a run's: one to three
@@ -254,7 +260,7 @@ def results_documents(draw, link: bool = True) -> dict[str, Any]:
                                              max_size=2))
             if draw(st.booleans()):
                 c["case"]["op"] = doc["kernel"]["op"]
-                if c["case"]["op"] in ("batch_norm", "group_norm", "instance_norm") and len(c["case"]["shape"]) < 2:
+                if c["case"]["op"] in _CHANNEL_OPS and len(c["case"]["shape"]) < 2:
                     c["case"]["shape"] = c["case"]["shape"] + [2]
                 if c["case"]["op"] == "group_norm" and c["case"].get("groups", 0) < 1:
                     c["case"]["groups"] = 1
