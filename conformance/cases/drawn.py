@@ -1,7 +1,7 @@
 """Drawn values: x from a recipe of distribution parameters written into the case's value kind.
 
 The worst-case search (conformance.search) varies what the catalog's fixed value kinds hold
-constant. A recipe is the value kind ``drawn:loc=L,spread=S,tail=T,flat=F,run=R,special=K*C,s=N``:
+constant. A recipe is the value kind ``drawn:loc=L,spread=S,tail=T,flat=F,run=R,special=K*C,at=A,s=N``:
 
     x = loc + spread * z,   z ~ tail (normal: N(0, 1); uniform: U(-sqrt 3, sqrt 3), unit variance;
                                       t2: Student t with 2 degrees of freedom, clipped to +-TAIL_CLIP)
@@ -9,7 +9,8 @@ constant. A recipe is the value kind ``drawn:loc=L,spread=S,tail=T,flat=F,run=R,
 then, in this order: ``run`` > 1 makes runs of ``run`` equal consecutive values (in the logical
 C order of x); ``flat`` percent of the normalization groups are made constant (their first value
 everywhere: zero variance); ``special`` K*C puts C elements of kind K (nan, inf, ninf, zero, max)
-at positions drawn from the stream. ``s`` selects the random stream (with the run's seed and the
+at positions drawn from the stream: anywhere (``at=any``), or at the first or the last element (in C
+order) of C normalization groups (``at=first``, ``at=last``), where a kernel's loop starts or ends. ``s`` selects the random stream (with the run's seed and the
 case id, Case.seed_for). loc and spread are written as signed powers of two (``-2^10``, ``2^-3``)
 or 0, so the id reads back exactly. The value kind is part of the case id like every other field,
 so a drawn case's id reproduces its data (docs/search.md).
@@ -21,11 +22,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Recipe", "PREFIX", "TAILS", "SPECIALS", "TAIL_CLIP", "parse_recipe", "drawn_values"]
+__all__ = ["Recipe", "PREFIX", "TAILS", "SPECIALS", "PLACES", "TAIL_CLIP", "parse_recipe", "drawn_values"]
 
 PREFIX = "drawn:"
 TAILS = ("normal", "uniform", "t2")
 SPECIALS = ("none", "nan", "inf", "ninf", "zero", "max")
+PLACES = ("any", "first", "last")
 #: |z| of the t2 tail is clipped here, so that loc and spread alone bound the magnitude of x.
 TAIL_CLIP = 64.0
 
@@ -57,11 +59,14 @@ class Recipe:
     run: int = 1
     special: str = "none"
     special_count: int = 0
+    at: str = "any"
     stream: int = 0
 
     def __post_init__(self) -> None:
         if self.tail not in TAILS:
             raise ValueError(f"tail must be one of {', '.join(TAILS)}, received {self.tail!r}")
+        if self.at not in PLACES:
+            raise ValueError(f"at must be one of {', '.join(PLACES)}, received {self.at!r}")
         if self.special not in SPECIALS:
             raise ValueError(f"special must be one of {', '.join(SPECIALS)}, received {self.special!r}")
         if not 0 <= self.flat <= 100 or self.run < 1 or self.special_count < 0 or self.stream < 0:
@@ -81,7 +86,7 @@ class Recipe:
         """The value kind that names this recipe in a case id."""
         sp = "none" if self.special == "none" or not self.special_count else f"{self.special}*{self.special_count}"
         return (f"{PREFIX}loc={_show_pow2(self.loc_sign, self.loc_exp)},spread=2^{self.spread_exp},tail={self.tail},"
-                f"flat={self.flat},run={self.run},special={sp},s={self.stream}")
+                f"flat={self.flat},run={self.run},special={sp},at={self.at},s={self.stream}")
 
 
 def parse_recipe(kind: str) -> Recipe:
@@ -89,7 +94,7 @@ def parse_recipe(kind: str) -> Recipe:
     if not kind.startswith(PREFIX):
         raise ValueError(f"a drawn value kind starts with {PREFIX!r}, received {kind[:80]!r}")
     fields = dict(p.partition("=")[::2] for p in kind[len(PREFIX):].split(","))
-    want = ("loc", "spread", "tail", "flat", "run", "special", "s")
+    want = ("loc", "spread", "tail", "flat", "run", "special", "at", "s")
     if sorted(fields) != sorted(want):
         raise ValueError(f"a drawn value kind has the fields {', '.join(want)}, received {kind[:200]!r}")
     loc = _pow2(fields["loc"])
@@ -99,7 +104,7 @@ def parse_recipe(kind: str) -> Recipe:
     special, _, count = fields["special"].partition("*")
     r = Recipe(loc_sign=-1 if loc < 0 else 1, loc_exp=None if loc == 0 else int(np.log2(abs(loc))),
                spread_exp=int(np.log2(spread)), tail=fields["tail"], flat=int(fields["flat"]), run=int(fields["run"]),
-               special=special, special_count=int(count or 0), stream=int(fields["s"]))
+               special=special, special_count=int(count or 0), at=fields["at"], stream=int(fields["s"]))
     if r.kind != kind:
         raise ValueError(f"drawn value kind {kind[:200]!r} is not in its canonical form {r.kind!r}")
     return r
@@ -130,7 +135,13 @@ def drawn_values(kind: str, shape: tuple[int, ...], group_index: np.ndarray, big
         x = np.where(chosen[gi], first[gi], flat).reshape(shape)
     if r.special != "none" and r.special_count:
         value = {"nan": np.nan, "inf": np.inf, "ninf": -np.inf, "zero": 0.0, "max": big}[r.special]
-        pos = rng.choice(n, size=min(r.special_count, n), replace=False)
+        if r.at == "any":
+            pos = rng.choice(n, size=min(r.special_count, n), replace=False)
+        else:  # the first (last) element in C order of special_count groups
+            gi = group_index.reshape(-1)
+            ends = np.unique(gi if r.at == "first" else gi[::-1], return_index=True)[1]
+            ends = ends if r.at == "first" else n - 1 - ends
+            pos = rng.choice(ends, size=min(r.special_count, ends.size), replace=False)
         x = x.copy()
         x.reshape(-1)[pos] = value
     return x

@@ -36,7 +36,7 @@ MOMENTA = (0.1, 0.0, 0.01, 0.5, 1.0, None)
 
 @dataclass(frozen=True)
 class Limits:
-    """How large drawn shapes get: extents per axis, spatial rank, elements per case."""
+    """How large drawn shapes get (extents per axis, spatial rank, elements per case) and the eps values drawn."""
 
     max_batch: int = 6
     max_channels_per_group: int = 6
@@ -46,6 +46,7 @@ class Limits:
     max_rows: int = 6
     max_features: int = 40
     max_elements: int = 4096
+    eps: tuple[float, ...] = EPS_VALUES
 
 
 LIMITS = Limits()
@@ -74,6 +75,7 @@ def recipes(dtype: str) -> st.SearchStrategy[Recipe]:
         # beyond what conformance.tolerances.ranges promises (the search found it)
         special=st.sampled_from(("none", "nan", "inf", "ninf", "zero")),
         special_count=st.integers(min_value=0, max_value=3),
+        at=st.sampled_from(("any", "first", "last")),
         stream=st.integers(min_value=0, max_value=255),
     )
 
@@ -128,7 +130,7 @@ def cases(draw, kernel: Kernel, dtype: str, lim: Limits = LIMITS) -> Case:
     if not kernel.optional_params:
         wk, bk = [w for w in wk if w != "none"], [b for b in bk if b != "none"]
     weight, bias = draw(st.sampled_from(wk)), draw(st.sampled_from(bk))
-    eps, recipe = draw(st.sampled_from(EPS_VALUES)), draw(recipes(dtype))
+    eps, recipe = draw(st.sampled_from(lim.eps)), draw(recipes(dtype))
     assume(not _variance_underflows(kernel, dtype, eps, recipe))
     fields = dict(op=kernel.op, dtype=dtype, shape=tuple(shape), layout=layout, strides=strides, weight=weight,
                   bias=bias, eps=eps, values=recipe.kind,
