@@ -55,8 +55,7 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     # --- stored reproducers of refnorm search (conformance.search; docs/search.md) ---
     g.addoption("--refnorm-replay", metavar="DIR",
                 help="also run each stored reproducer (refnorm search --out) under DIR of the kernel's op and dtypes "
-                     "as a test item (default: the ini setting refnorm_replay)")
-    parser.addini("refnorm_replay", "a folder of stored reproducers to run as test items (--refnorm-replay)", default="")
+                     "as a test item")
 
 
 class CaseFailure(Exception):
@@ -80,7 +79,7 @@ class _State:
                                case_ids=opt("refnorm_case"), baseline=opt("refnorm_baseline"),
                                growth=opt("refnorm_growth"), growth_floor=opt("refnorm_growth_floor"))
         self.shard = opt("refnorm_shard")
-        self.replay = opt("refnorm_replay") or config.getini("refnorm_replay") or None  # conformance.search
+        self.replay = opt("refnorm_replay")  # stored reproducers (conformance.search)
         self.today = today_utc()
         self.baselines: dict[int, dict[str, Any]] = {}
         for i, p in enumerate(self.plans):

@@ -1,5 +1,5 @@
-"""Stored reproducers as pytest items: ``pytest --refnorm-kernel SPEC --refnorm-replay DIR`` (or the ini
-setting ``refnorm_replay``) adds, beside the kernel's catalog items, one item per reproducer under DIR
+"""Stored reproducers as pytest items: ``pytest --refnorm-kernel SPEC --refnorm-replay DIR`` adds, beside the
+kernel's catalog items, one item per reproducer under DIR
 of the kernel's op and dtypes, named ``KERNEL::replay::CASE_ID``. Each reruns its stored case with the
 reproducer's seed and tolerance overrides in a worker process (conformance.search.replay) and is
 judged as a catalog item is (waivers, inconclusive passes); a reproducer that cannot be trusted is a
