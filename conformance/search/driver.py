@@ -102,6 +102,7 @@ def run_search(kernel: Kernel, dtype: str, evaluate: Callable[[Case], CaseResult
     t0 = time.monotonic()
     log = stream or sys.stderr
     step = max(1, evaluations // 10)
+    tty = not quiet and hasattr(log, "isatty") and log.isatty()
 
     def fails(res: CaseResult) -> tuple[str, ...]:
         names = failing_outputs(res)
@@ -137,10 +138,11 @@ def run_search(kernel: Kernel, dtype: str, evaluate: Callable[[Case], CaseResult
             w = out.worst.get(o["name"])
             if w is None or b > w.budget_used:
                 out.worst[o["name"]] = Worst(o["name"], b, case, bool(o.get("passed")), out.evaluations)
-        if not quiet and (out.evaluations % step == 0):
+        if not quiet and (tty or out.evaluations % step == 0):  # a redrawn line on a terminal, plain lines in logs
             worst = max((w.budget_used for w in out.worst.values()), default=0.0)
-            log.write(f"[{out.evaluations} evaluations] worst budget used {worst:.3g}"
-                      f"{', failure found, shrinking' if out.first else ''}, {time.monotonic() - t0:.1f} s\n")
+            text = (f"[{out.evaluations} evaluations] worst budget used {worst:.3g}"
+                    f"{', failure found, shrinking' if out.first else ''}, {time.monotonic() - t0:.1f} s")
+            log.write("\r\033[K" + text if tty else text + "\n")
             log.flush()
         return res
 
@@ -175,5 +177,8 @@ def run_search(kernel: Kernel, dtype: str, evaluate: Callable[[Case], CaseResult
         pass
     except KeyboardInterrupt as e:  # what was found so far is kept: the caller writes it, marked incomplete
         out.interrupted = getattr(e, "signal", "SIGINT")
+    if tty:
+        log.write("\r\033[K")
+        log.flush()
     out.duration_s = time.monotonic() - t0
     return out
