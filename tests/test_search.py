@@ -263,8 +263,10 @@ def test_corrupt_or_foreign_reproducers_are_refused(found, tmp_path, capsys):
     err = _replay_error(_spec("layer_norm_fp32"), src, capsys)
     assert "reproducer of batch_norm" in err and "layer_norm kernel" in err
     # --replay with a catalog selection
-    assert main(["check", spec, "--replay", str(src), "--case", "x"]) == 2
-    assert "--replay" in capsys.readouterr().err
+    for extra in (["--case", "x"], ["--seed", "4"], ["--tolerance", "y=1e-3,0"]):
+        assert main(["check", spec, "--replay", str(src), *extra]) == 2
+        err = capsys.readouterr().err
+        assert "--replay" in err and extra[0] in err
     # nothing lost: the original reproducer is untouched and still replays
     assert json.loads((src / REPRODUCER).read_text())["seed"] == 1
 

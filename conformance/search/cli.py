@@ -37,13 +37,16 @@ def add_check_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def prepare(args: argparse.Namespace) -> None:
-    """--replay: the path exists and holds reproducers; no catalog selection beside it."""
+    """--replay: the path exists and holds reproducers; no catalog selection, seed or tolerance beside it (each
+    reproducer carries its own seed and overrides)."""
     if getattr(args, "replay", None) is None:
         return
     from .reproducer import ReproducerError, find_reproducers
 
-    clash = [o for o, v in (("--case", args.case), ("--shard", getattr(args, "shard", None)),
-                            ("--tier", args.tier)) if v]
+    typed = [("--case", args.case), ("--shard", getattr(args, "shard", None))]
+    if getattr(args, "profile", None) is None:  # a profile fills --seed and --tolerance; typed, they would be ignored
+        typed += [("--seed", args.seed), ("--tolerance", args.tolerance)]
+    clash = [o for o, v in typed if v is not None and v != []]
     if clash:
         raise _usage(f"--replay reruns stored reproducers; it takes no {', '.join(clash)}")
     try:

@@ -4,8 +4,9 @@ Every reproducer under PATH is read and checked first (conformance.search.reprod
 the kernel's op and dtypes, the inputs regenerated bit for bit), so a bad one is a usage error before
 any case runs. Each case then runs as `refnorm check` runs a case, in an isolated worker process,
 with the reproducer's seed and tolerance overrides; the result is a normal results document
-(run.tier "replay"; run.replay lists, per reproducer, its folder and whether the result equals the
-search's to the last bit: every metric, message and status, timings aside).
+(run.tier "replay"; run.seed the first reproducer's; run.replay lists, per reproducer, its folder, seed,
+overrides and whether the result equals the search's to the last bit: every metric, message and status,
+timings aside).
 """
 
 from __future__ import annotations
@@ -67,6 +68,7 @@ def replay_document(kernel: Kernel, reps: Sequence[Reproducer], *, spec: str | N
             res = replay(kernel, r, spec=spec, timeout=timeout)
             results.append(res)
             records.append({"reproducer": str(r.folder), "seed": r.seed, "id": r.case.id,
+                            "overrides": {k: list(v) for k, v in r.overrides.items()},
                             "matches_search": comparable(res) == r.result})
             prog.update(res)
     except KeyboardInterrupt:
@@ -75,7 +77,10 @@ def replay_document(kernel: Kernel, reps: Sequence[Reproducer], *, spec: str | N
         prog.close()
     run = {"tier": "replay", "seed": reps[0].seed if reps else 0, "dtypes": sorted({r.case.dtype for r in reps}),
            "case_ids": [r.case.id for r in reps], "workers": 1, "timeout_s": timeout,
-           "overrides": {k: list(v) for r in reps for k, v in r.overrides.items()}, "started": started,
+           # one set of overrides when every reproducer has the same, else each record's own (run.replay)
+           "overrides": ({k: list(v) for k, v in reps[0].overrides.items()}
+                         if reps and all(r.overrides == reps[0].overrides for r in reps) else {}),
+           "started": started,
            "finished": now_iso(), "duration_s": round(time.monotonic() - t0, 3), "cases_selected": len(reps),
            "command": command, "spec": spec, "pid": os.getpid(), "replay": records}
     return build_document(kernel.declaration(), run, results, complete, selected=[r.case.id for r in reps])

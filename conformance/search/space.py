@@ -53,9 +53,10 @@ LIMITS = Limits()
 
 
 def recipes(dtype: str) -> st.SearchStrategy[Recipe]:
-    """Value recipes for ``dtype``: |loc| + TAIL_CLIP spread stays below 2^-4 of the largest finite value
-    (so x is finite unless a special value says otherwise), the spread reaches 2^-3 below the smallest
-    normal (subnormal data), and the mean reaches 2^(p+4) spreads (cancellation beyond the significand)."""
+    """Value recipes for ``dtype``. Exponents are mostly moderate (spread 2^-8..2^8, loc 2^-4..2^(p+6) with p
+    the significand's bits: means up to 2^(p+14) spreads away, cancellation beyond the significand) and
+    sometimes anywhere from 2^-3 below the smallest normal (subnormal data) to where |loc| + TAIL_CLIP spread
+    stays below 2^-4 of the largest finite value (x finite unless a special value says otherwise)."""
     fi = dtypes.finfo(dtype)
     top = int(math.floor(math.log2(float(fi.max)))) - 4
     low = int(math.floor(math.log2(float(fi.smallest_normal)))) - 3
@@ -96,7 +97,8 @@ def _shape(draw, spec, lim: Limits) -> tuple[tuple[int, ...], int]:
 
 
 def _kinds(spec) -> tuple[list[str], list[str]]:
-    """The weight and bias kinds of the op's catalog (its first pair, then its default, lead)."""
+    """The weight and bias kinds of the op's catalog; random weight and the op's default bias first (where
+    shrinking goes)."""
     w = list(dict.fromkeys(["random"] + [a for a, _ in spec.param_kinds]))
     b = list(dict.fromkeys([spec.default_bias] + [b for _, b in spec.param_kinds]))
     return w, b
