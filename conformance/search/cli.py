@@ -11,7 +11,6 @@ marked incomplete). check --replay exits as check does.
 from __future__ import annotations
 
 import argparse
-import json
 import shlex
 from pathlib import Path
 from typing import Any, Sequence
@@ -109,6 +108,7 @@ def _out_folder(path: str) -> Path:
 def cmd_search(args: argparse.Namespace, argv: Sequence[str]) -> int:
     from .. import ops, stop
     from ..cli import EXIT_FAIL, EXIT_INTERRUPTED, EXIT_OK, resolve_kernel
+    from ..results import write_json_atomic
     from ..gate.worker import KeptWorker
     from .driver import run_search
     from .reproducer import write_reproducer
@@ -146,7 +146,7 @@ def cmd_search(args: argparse.Namespace, argv: Sequence[str]) -> int:
                                shrink_evaluations=args.evaluations, focus=args.output, spec=spec, command=command,
                                reproducer=None if repro is None else str(repro))
         if out is not None:
-            (out / SUMMARY).write_text(json.dumps(doc, indent=1, allow_nan=False) + "\n", encoding="utf-8")
+            write_json_atomic(out / SUMMARY, doc)
     for line in summary_lines(doc):
         print(line)
     if repro is not None:

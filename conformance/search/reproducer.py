@@ -29,7 +29,7 @@ import refnorm
 from ..cases.generators import make_inputs
 from ..cases.model import Case
 from ..kernel import Kernel
-from ..results import CAUTION, CaseResult, now_iso
+from ..results import CAUTION, CaseResult, now_iso, write_json_atomic
 from ..vectors.export import export_vectors
 from ..vectors.manifest import VectorsError, file_path, load_manifest, verify_files
 from ..vectors.npy import NpyError, decode, read_npy
@@ -95,9 +95,7 @@ def write_reproducer(folder: str | os.PathLike, kernel: Kernel, case: Case, seed
             "overrides": {k: [float(a), float(r)] for k, (a, r) in (overrides or {}).items()},
             "caution": "A reproducer is one case that failed: it shows a defect on these inputs; a pass on it "
                        "after a fix is evidence on this case only. " + CAUTION}
-    p = d / REPRODUCER
-    p.write_text(json.dumps(data, indent=1, allow_nan=False) + "\n", encoding="utf-8")
-    return p
+    return write_json_atomic(d / REPRODUCER, data)
 
 
 def _no_constants(name: str) -> Any:
