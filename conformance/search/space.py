@@ -108,7 +108,7 @@ def _kinds(spec) -> tuple[list[str], list[str]]:
     return w, b
 
 
-def _below_normal_range(kernel: Kernel, dtype: str, eps: float, recipe: Recipe) -> str:
+def _below_normal_range(acc: str, dtype: str, eps: float, recipe: Recipe) -> str:
     """Why drawn values leave the accumulation format's normal range downwards ("" when they do not): the
     derived bounds model rounding, not underflow, so such a case is outside what the declared precision
     promises (as conformance.tolerances.ranges says of overflow). Two ways, each found by the search on
@@ -119,8 +119,8 @@ def _below_normal_range(kernel: Kernel, dtype: str, eps: float, recipe: Recipe) 
     - a spread below the accumulation format's smallest normal (x 16) where that is above the storage
       format's (float64 data of spread 2^-131 in a float32-accumulating kernel: its sums are subnormal).
       Where the two formats share the range the catalog's subnormal cases cover such data, and so may the search.
+    ``acc`` is the kernel's accumulation format for ``dtype``.
     """
-    acc = kernel.precision_for(dtype).resolved().accumulate
     tiny = float(dtypes.finfo(acc).smallest_normal) * 16.0
     if eps < tiny and 2 * recipe.spread_exp < math.log2(tiny):
         return "var + eps underflows"
@@ -149,7 +149,7 @@ def cases(draw, kernel: Kernel, dtype: str, lim: Limits = LIMITS) -> Case:
     weight, bias = draw(st.sampled_from(wk)), draw(st.sampled_from(bk))
     acc = kernel.precision_for(dtype).resolved().accumulate
     eps, recipe = draw(st.sampled_from(lim.eps)), draw(recipes(dtype, acc))
-    assume(not _below_normal_range(kernel, dtype, eps, recipe))
+    assume(not _below_normal_range(acc, dtype, eps, recipe))
     fields = dict(op=kernel.op, dtype=dtype, shape=tuple(shape), layout=layout, strides=strides, weight=weight,
                   bias=bias, eps=eps, values=recipe.kind,
                   dy=draw(st.sampled_from(("normal", "ones"))), **spec.axes.case_fields(k))
