@@ -44,7 +44,7 @@ EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_INTERRUPTED, EXIT_INCONCLUSIVE = 0, 1, 2, 3
 #: Another command that makes a results document (`refnorm score`) runs the same steps with its own
 #: hooks: prepare_outputs(args, hooks) before, finish(args, doc, hooks) after.
 EXTENSIONS = ("conformance.adapters.cli", "conformance.report.cli", "conformance.gate.cli", "conformance.vectors.cli",
-              "conformance.run.cli")
+              "conformance.run.cli", "conformance.search.cli")
 
 
 def _extensions():
@@ -198,7 +198,12 @@ def cmd_check(args: argparse.Namespace, argv: Sequence[str]) -> int:
     kernel, spec = resolve_kernel(loaded[1] if loaded else args.spec, args.op, loaded[0] if loaded else None)
     opts = run_options(args, kernel, argv)
     try:
-        doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
+        if getattr(args, "replay", None) is not None:  # --replay: stored reproducers (conformance.search.cli)
+            from .search.cli import replay_check
+
+            doc = replay_check(args, kernel, spec, argv)
+        else:
+            doc = run_check(kernel, opts, spec=spec, quiet=args.quiet)
     except KeyError as e:  # an unknown --case id
         raise UsageError(str(e.args[0]) if e.args else str(e))
     return finish(args, doc, exts)

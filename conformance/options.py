@@ -88,6 +88,8 @@ LIMITS: dict[str, Limit] = {
                           why="passing budgets are at most 1"),
     "shards": Limit("the number of shards", integer=True, low=1, high=256,
                     why="one CI job each; a matrix of more is a typo"),
+    "evaluations": Limit("kernel evaluations of a search", integer=True, low=1, high=1_000_000,
+                         why="each runs the kernel once; a million is days of a slow kernel"),
     "atol": Limit("an absolute tolerance", integer=False, low=0, high=1e100),
     "rtol": Limit("a relative tolerance", integer=False, low=0, high=1e100),
 }

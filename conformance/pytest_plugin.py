@@ -2,7 +2,7 @@
 
     pytest --refnorm-kernel SPEC [--refnorm-tier T] [--refnorm-dtype D ...] [--refnorm-seed N]
            [--refnorm-profile PATH] [--refnorm-case ID ...] [--refnorm-timeout S] [--refnorm-shard K/N]
-           [--refnorm-baseline OLD.json] [--refnorm-growth F] [--refnorm-growth-floor B]
+           [--refnorm-baseline OLD.json] [--refnorm-growth F] [--refnorm-growth-floor B] [--refnorm-replay DIR]
 
 Registered through the ``pytest11`` entry point (and loadable with
 ``-p conformance.pytest_plugin``); it does nothing unless --refnorm-kernel or
@@ -52,6 +52,10 @@ def pytest_addoption(parser: pytest.Parser) -> None:
                 help="allowed growth over the baseline (default 2)")
     g.addoption("--refnorm-growth-floor", type=number_type("growth_floor"), metavar="B",
                 help="budgets below B count as B when measuring growth (default 0.01)")
+    # --- stored reproducers of refnorm search (conformance.search; docs/search.md) ---
+    g.addoption("--refnorm-replay", metavar="DIR",
+                help="also run each stored reproducer (refnorm search --out) under DIR of the kernel's op and dtypes "
+                     "as a test item")
 
 
 class CaseFailure(Exception):
@@ -75,6 +79,7 @@ class _State:
                                case_ids=opt("refnorm_case"), baseline=opt("refnorm_baseline"),
                                growth=opt("refnorm_growth"), growth_floor=opt("refnorm_growth_floor"))
         self.shard = opt("refnorm_shard")
+        self.replay = opt("refnorm_replay")  # stored reproducers (conformance.search)
         self.today = today_utc()
         self.baselines: dict[int, dict[str, Any]] = {}
         for i, p in enumerate(self.plans):
@@ -186,7 +191,12 @@ class KernelNode(pytest.Collector):
         groups: dict[str, list] = {}
         for case in cases:
             groups.setdefault(f"{case.op}.{case.dtype}", []).append(case)
-        return [GroupNode.from_parent(self, name=g, index=self.index, cases=cs) for g, cs in groups.items()]
+        nodes = [GroupNode.from_parent(self, name=g, index=self.index, cases=cs) for g, cs in groups.items()]
+        if state.replay:  # stored reproducers of refnorm search, one item each (conformance.search.pytest_items)
+            from conformance.search.pytest_items import ReplayNode
+
+            nodes.append(ReplayNode.from_parent(self, name="replay", index=self.index, folder=state.replay))
+        return nodes
 
 
 class GroupNode(pytest.Collector):
@@ -217,12 +227,9 @@ class CaseItem(pytest.Item):
 
         state = self.config.stash[_STATE]
         plan = state.plans[self.index]
-        from conformance.results import CaseResult, accept_inconclusive
-        from conformance.run import skip_reason
+        from conformance.results import accept_inconclusive
 
-        why = skip_reason(plan.kernel, self.case)  # as the runner does: no worker for a case the kernel excludes
-        res = (CaseResult(id=self.case.id, case=self.case.as_dict(), status="skipped", message=why) if why
-               else state.pool(self.index).run_one(self.case))
+        res = self._result(state, plan)
         # an inconclusive pass fails the item (it is not evidence) unless the profile accepts its outputs
         res = accept_inconclusive([res], getattr(plan, "accept_inconclusive", ()))[0].to_dict()
         regress_case(res, state.baselines.get(self.index, {}).get(self.case.id), plan.growth, plan.growth_floor)
@@ -239,6 +246,16 @@ class CaseItem(pytest.Item):
         if outcome == "waived":
             pytest.xfail(msg)
         raise CaseFailure(self._report(plan, res["status"] if res["status"] != "passed" else "expired waiver", msg))
+
+    def _result(self, state: Any, plan: Any) -> Any:
+        """The case's CaseResult: skipped where the kernel excludes it (as the runner does), else run in the
+        kernel's kept worker."""
+        from conformance.results import CaseResult
+        from conformance.run import skip_reason
+
+        why = skip_reason(plan.kernel, self.case)
+        return (CaseResult(id=self.case.id, case=self.case.as_dict(), status="skipped", message=why) if why
+                else state.pool(self.index).run_one(self.case))
 
     def _report(self, plan: Any, status: str, msg: str) -> str:
         import shlex

@@ -11,6 +11,7 @@ import numpy as np
 from .. import dtypes, ops
 from ..kernel import Precision
 from ..ops.axes import statistic_index
+from . import drawn
 from .model import Case
 
 __all__ = ["make_inputs", "group_index", "laid_out", "CANCELLATION", "LARGE_OFFSET"]
@@ -54,6 +55,8 @@ def group_index(case: Case) -> np.ndarray:
 def _values(case: Case, rng: np.random.Generator) -> np.ndarray:
     shape, dt = case.shape, case.dtype
     kind = case.values
+    if kind.startswith(drawn.PREFIX):  # the worst-case search's recipes (conformance.cases.drawn)
+        return drawn.drawn_values(kind, shape, group_index(case), float(dtypes.finfo(dt).max), rng)
     if kind == "normal":
         return rng.standard_normal(shape)
     if kind == "cancellation":

@@ -106,7 +106,7 @@ _CASE_RECORD = {
         "running": {"type": "boolean"}, "momentum": {"type": ["number", "null"]},
         "batches_seen": {"type": "integer", "minimum": 0}, "strides": {"type": "string"},
         "groups": {"type": "integer", "minimum": 0}, "norm_ndim": {"type": "integer", "minimum": 0},
-        "tier": {"enum": list(TIERS)}, "id": {"type": "string"}}}
+        "tier": {"enum": list(TIERS) + ["search"]}, "id": {"type": "string"}}}  # search: drawn (docs/search.md)
 _INPUT = {
     "type": "object",
     "required": ["name", "format", "npy_dtype", "shape", "strides", "offset", "buffer_elements", "nonfinite",
