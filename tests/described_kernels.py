@@ -11,13 +11,15 @@ from conformance import dtypes
 from conformance.kernel import Kernel, call_with
 
 
-def rounded_oracle(spec, dtype: str) -> Kernel:
+def rounded_oracle(spec, dtype: str, rnd=None, precision=None) -> Kernel:
     """forward returns y (and h for a fused residual add), backward dx, dweight, dbias, each rounded to
-    the storage format ``dtype``."""
+    the storage format ``dtype`` (by ``rnd``, a float64 array -> the format, where given: to nearest
+    by default); ``precision`` is the declared Precision (the default's where None)."""
     st = dtypes.dtype_of(dtype)
+    cast = rnd or (lambda a: np.asarray(a).astype(st))
 
     def rnd(a):
-        return None if a is None else np.asarray(a).astype(st)
+        return None if a is None else cast(np.asarray(a))
 
     def up(kw):
         return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
@@ -41,4 +43,5 @@ def rounded_oracle(spec, dtype: str) -> Kernel:
 
     entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
     return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False,
-                  outputs=("y", *spec.residual_outputs), **entries)
+                  outputs=("y", *spec.residual_outputs), **({"precision": precision} if precision else {}),
+                  **entries)
