@@ -308,4 +308,8 @@ def _message(r: OutputResult, bound: Bound) -> str:
     lines.append(f"Bound: {bound.formula}")
     if acc:
         lines.append("Accepted:" + acc[1:])
+    rs = r.rounding
+    if rs.get("elements"):  # against the correctly rounded value (conformance.rounding_bias)
+        lines.append(f"Correctly rounded ({r.dtype}): {rs['correctly_rounded']} / {rs['elements']}; off it: "
+                     f"{rs['off_toward_zero']} toward zero, {rs['off_away']} away from zero")
     return "\n".join(lines)

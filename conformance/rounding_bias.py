@@ -188,6 +188,11 @@ def bias_lines(doc: dict[str, Any]) -> list[str]:
     """Terminal and CI lines: every flagged output, then a count of those with no evidence."""
     rows = doc.get("rounding_bias") or []
     out = [describe(r) for r in rows if r["verdict"] == "flagged"]
+    blind = [r for r in rows if r["verdict"] == "not tested"]
+    if blind:
+        out.append(f"rounding bias not tested on {len(blind)} output(s) ({', '.join(r['output'] for r in blind[:6])}"
+                   f"{', ...' if len(blind) > 6 else ''}): no value's correct rounding is determined by the bound "
+                   "(the declared arithmetic errs by more than half an ULP before the final rounding)")
     calm = [r for r in rows if r["verdict"] == "no evidence"]
     if calm:
         out.append(f"rounding bias: no evidence of directed rounding in {len(calm)} output(s) "

@@ -67,3 +67,4 @@ def directed_round(a: np.ndarray, fmt: str, direction: str) -> np.ndarray:
 def directed_oracle(spec, dtype: str, direction: str, precision=None):
     """rounded_oracle(spec, dtype) with every output rounded ``direction`` instead of to nearest."""
     return rounded_oracle(spec, dtype, rnd=lambda a: directed_round(a, dtype, direction), precision=precision)
+
