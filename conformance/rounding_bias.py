@@ -49,7 +49,7 @@ def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarr
     actual, expected, bound : float64 arrays of one shape (the kernel's values, the oracle's, the bound).
     Returns {} for float64 outputs (the oracle is not a correctly rounded reference there); else
     elements (finite, nonzero e and c), correctly_rounded (actual == c), determined (distance of e to the
-    nearest midpoint > bound - u_f |e| + the oracle's margin), off_toward_zero / off_away (elements
+    nearest midpoint > bound - u_f |e| + the oracle's margin, and |actual - e| within the bound), off_toward_zero / off_away (elements
     that are not correctly rounded, by direction: reported, not tested, since a correct kernel's errors
     before its final rounding are correlated across elements), and on determined elements: deviations
     (actual != c), toward_zero / away (|actual| < / > |c|), up / down (actual > / < c), sum_ulp (signed
@@ -74,7 +74,9 @@ def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarr
         down = np.where((m == 0.5) & (ex - 1 > emin), up / 2, up)  # at a power of two the spacing below halves
         dist = np.minimum(ae - (ac - down / 2), (ac + up / 2) - ae)
         pre = np.maximum(b - dtypes.unit_roundoff(dtype) * ae, 0.0) + ORACLE_MARGIN * ae
-        det = dist > pre
+        # an element beyond its bound is the comparison's finding, and its sign tells of that error, not of the
+        # rounding: the test counts the elements the bound passes
+        det = (dist > pre) & (np.abs(a - e) <= b)
     ad, cd = a[det], c[det]
     dev = ad != cd
     away = np.abs(ad) > np.abs(cd)
