@@ -28,8 +28,8 @@ import numpy as np
 
 from . import dtypes
 
-__all__ = ["ALPHA", "DIRECTIONS", "element_statistics", "binomial_tail", "run_outputs", "run_bias", "flagged", "describe",
-           "bias_lines"]
+__all__ = ["ALPHA", "DIRECTIONS", "element_statistics", "binomial_tail", "run_outputs", "run_bias", "flagged",
+           "describe", "bias_lines"]
 
 #: The false-alarm probability of a run: a kernel that rounds to nearest is flagged in at most one run in 10^6.
 ALPHA = 1e-6
@@ -40,7 +40,8 @@ DIRECTIONS = (("toward zero", "toward_zero", "away"), ("away from zero", "away",
 EXACT_LIMIT = 20000
 #: Relative error allowed to the float64 oracle itself when locating a midpoint (a few float64 ulps).
 ORACLE_MARGIN = 8 * 2.0 ** -53
-_COUNTS = ("elements", "correctly_rounded", "off_toward_zero", "off_away", "determined", "deviations", "toward_zero", "away", "up", "down")
+_COUNTS = ("elements", "correctly_rounded", "off_toward_zero", "off_away", "determined", "deviations", "toward_zero",
+           "away", "up", "down")
 
 
 def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarray, dtype: str) -> dict[str, Any]:
@@ -49,9 +50,10 @@ def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarr
     actual, expected, bound : float64 arrays of one shape (the kernel's values, the oracle's, the bound).
     Returns {} for float64 outputs (the oracle is not a correctly rounded reference there); else
     elements (finite, nonzero e and c), correctly_rounded (actual == c), determined (distance of e to the
-    nearest midpoint > bound - u_f |e| + the oracle's margin, and |actual - e| within the bound), off_toward_zero / off_away (elements
-    that are not correctly rounded, by direction: reported, not tested, since a correct kernel's errors
-    before its final rounding are correlated across elements), and on determined elements: deviations
+    nearest midpoint > bound - u_f |e| + the oracle's margin, and |actual - e| within the bound),
+    off_toward_zero / off_away (elements that are not correctly rounded, by direction: reported, not
+    tested, since a correct kernel's errors before its final rounding are correlated across elements),
+    and on determined elements: deviations
     (actual != c), toward_zero / away (|actual| < / > |c|), up / down (actual > / < c), sum_ulp (signed
     ULP distance, positive away from zero) and sum_sq_ulp.
     """

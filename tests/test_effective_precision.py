@@ -43,7 +43,8 @@ def test_sums_of_known_precision(op, acc):
     everything else in float32: dbias (a plain sum) reads as acc's significand within TOL, declared
     (output_accumulate) or not, and both readings agree; a declared dweight (a sum of products of
     float32 terms) too where its sums are narrower than float32 (in float32 its allowance is mostly that
-    of the terms dy xhat and the statistics, which the model counts at their worst: it reads 26.6 bits). The significand is that of ml_dtypes.finfo / np.finfo (nmant + 1)."""
+    of the terms dy xhat and the statistics, which the model counts at their worst: it reads 26.6 bits).
+    The significand is that of ml_dtypes.finfo / np.finfo (nmant + 1)."""
     p = int(dtypes.finfo(acc).nmant) + 1
     assert p == BITS[acc]  # IEEE 754-2019 §3.6; bfloat16 from memory, as above
     declared = SequentialParamSums(op, "float32", acc).kernel(
@@ -111,4 +112,5 @@ def test_report_and_terminal_show_both_sections(tmp_path):
     html = render_html(doc, [])
     assert 'id="effective-precision-table"' in html and 'id="rounding-bias-table"' in html
     lines = verdict_lines(doc)
-    assert sum(1 for x in lines if "behaves like arithmetic" in x or "not resolved" in x) == len(doc["effective_precision"])
+    shown = [x for x in lines if "behaves like arithmetic" in x or "not resolved" in x]
+    assert len(shown) == len(doc["effective_precision"]) == 6  # y, mean, rstd, dx, dweight, dbias
