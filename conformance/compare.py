@@ -276,13 +276,16 @@ def _numerics(res: OutputResult, a: np.ndarray, exp: np.ndarray, b: np.ndarray, 
     from .effective_precision import case_statistics
     from .rounding_bias import element_statistics
 
-    keep = np.broadcast_to(both, exp.shape)
-    a_k, e_k = np.where(keep, a, np.nan), np.where(keep, exp, np.nan)
+    if np.ndim(both) == 0:  # every element finite in both: no copies
+        a_k, e_k, err_k = a, exp, err
+    else:  # NaN marks the elements whose class the comparison judged: left out below
+        keep = np.broadcast_to(both, exp.shape)
+        a_k, e_k, err_k = np.where(keep, a, np.nan), np.where(keep, exp, np.nan), np.where(keep, err, np.nan)
     res.rounding = element_statistics(a_k, e_k, b, dtype)
     u_acc = bound.terms.get("u_o", bound.terms.get("u_a"))
     # the probabilistic model's bound is lam times its one-sigma error (docs/tolerances.md, Summation models)
     scale = float(bound.terms.get("lam", 1.0)) if "probabilistic" in bound.formula else 1.0
-    res.effective = case_statistics(np.where(keep, err, np.nan), e_k, b, dtype, u_acc, scale)
+    res.effective = case_statistics(err_k, e_k, b, dtype, u_acc, scale)
 
 
 def _message(r: OutputResult, bound: Bound) -> str:

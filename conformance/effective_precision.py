@@ -7,7 +7,7 @@ is, to first order, proportional to the unit roundoff u_a of the output's arithm
 error beyond the final rounding, err - u_f |e| (clipped at 0), against B - u_f |e| is the fraction r
 of the arithmetic's allowance used: a kernel whose arithmetic had unit roundoff u_a r would just meet
 the model's bound there. The probabilistic summation model's bound is lam times its one-sigma scale
-(Higham & Mary 2019, Theorem 2.8: the error is lam sqrt(n) u sum|t| with probability Q(lam, n)), so an
+(Higham & Mary 2019, Thm 2.4, theorem number from memory: the error is lam sqrt(n) u sum|t| with probability Q(lam, n)), so an
 arithmetic of unit roundoff u_a r lam errs at that scale. Per case the worker keeps r's maximum and the
 scale (lam for the probabilistic model, 1 for the deterministic ones); a run takes the maximum over
 cases of u_eff = u_a r scale and reports p_eff = -log2(u_eff) bits beside the declared p = -log2(u_a).

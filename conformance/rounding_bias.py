@@ -40,6 +40,9 @@ DIRECTIONS = (("toward zero", "toward_zero", "away"), ("away from zero", "away",
 EXACT_LIMIT = 20000
 #: Relative error allowed to the float64 oracle itself when locating a midpoint (a few float64 ulps).
 ORACLE_MARGIN = 8 * 2.0 ** -53
+#: Elements of one output examined per case: every element up to 2 SAMPLE, else every k-th (k = n // SAMPLE),
+#: so that a large output costs a bounded time; the counts are of the elements examined.
+SAMPLE = 1 << 16
 _COUNTS = ("elements", "correctly_rounded", "off_toward_zero", "off_away", "determined", "deviations", "toward_zero",
            "away", "up", "down")
 
@@ -48,8 +51,9 @@ def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarr
     """Counts of the kernel's values against the correctly rounded oracle values c = RN(e) in ``dtype``.
 
     actual, expected, bound : float64 arrays of one shape (the kernel's values, the oracle's, the bound).
-    Returns {} for float64 outputs (the oracle is not a correctly rounded reference there); else
-    elements (finite, nonzero e and c), correctly_rounded (actual == c), determined (distance of e to the
+    Returns {} for float64 outputs (the oracle is not a correctly rounded reference there); else, over
+    the elements examined (all of them, or evenly spaced ones of a large output: SAMPLE), elements
+    (finite, nonzero e and c), correctly_rounded (actual == c), determined (distance of e to the
     nearest midpoint > bound - u_f |e| + the oracle's margin, and |actual - e| within the bound),
     off_toward_zero / off_away (elements that are not correctly rounded, by direction: reported, not
     tested, since a correct kernel's errors before its final rounding are correlated across elements),
@@ -62,13 +66,15 @@ def element_statistics(actual: np.ndarray, expected: np.ndarray, bound: np.ndarr
     fi = dtypes.finfo(dtype)
     p = int(fi.nmant) + 1
     emin = int(fi.minexp)
-    e = np.asarray(expected, dtype=np.float64).ravel()
-    a = np.asarray(actual, dtype=np.float64).ravel()
-    b = np.broadcast_to(np.asarray(bound, dtype=np.float64), np.shape(expected)).ravel()
+    step = max(1, int(np.size(expected)) // SAMPLE)  # evenly spaced elements, at most about 2 SAMPLE
+    e = np.asarray(expected, dtype=np.float64).ravel()[::step]
+    a = np.asarray(actual, dtype=np.float64).ravel()[::step]
+    b = np.broadcast_to(np.asarray(bound, dtype=np.float64), np.shape(expected)).ravel()[::step]
     with np.errstate(all="ignore"):
         c = dtypes.round_to(e, dtype).astype(np.float64)
         ok = np.isfinite(a) & np.isfinite(e) & np.isfinite(b) & np.isfinite(c) & (e != 0) & (c != 0)
-        e, a, b, c = e[ok], a[ok], b[ok], c[ok]
+        if not ok.all():
+            e, a, b, c = e[ok], a[ok], b[ok], c[ok]
         ae, ac = np.abs(e), np.abs(c)
         m, ex = np.frexp(ac)  # |c| = m 2^ex, m in [0.5, 1): floor(log2 |c|) = ex - 1
         k = np.maximum(ex - 1, emin)  # below the normal range the spacing stays that of the smallest binade

@@ -1,10 +1,10 @@
 """Effective precision (conformance.effective_precision): kernels of known precision read as that
 precision, declared or not; the correctly rounded fraction; torch CPU's bfloat16 sums.
 
-Significand widths (implicit bit included): binary32 24, binary16 11 (IEEE 754-2019 §3.6, Table 3.5);
+Significand widths (implicit bit included): binary32 24, binary16 11 (IEEE 754-2019 §3.3);
 bfloat16 8 (from memory: the 16 upper bits of binary32, 7 stored fraction bits; ml_dtypes.finfo says so,
 nmant = 7). Tolerance: 2 bits. Why: the fit reads the worst error at the probabilistic model's one-sigma
-scale (Higham & Mary 2019, Theorem 2.8: lam sqrt(n) u sum|t| with lam = 8 = 2^3 the bound's margin), so
+scale (Higham & Mary 2019, Thm 2.4, theorem number from memory: lam sqrt(n) u sum|t| with lam = 8 = 2^3 the bound's margin), so
 a worst error at the bound itself reads 3 bits low and one at a third of a sigma about 1.6 bits high;
 the worst of a few hundred near-Gaussian errors lies at 2-3 sigma (common practice), 1-1.6 bits below
 the full bound: 2 bits covers it. Measured: within 0.9 bit for every dbias (below).
@@ -46,7 +46,7 @@ def test_sums_of_known_precision(op, acc):
     of the terms dy xhat and the statistics, which the model counts at their worst: it reads 26.6 bits).
     The significand is that of ml_dtypes.finfo / np.finfo (nmant + 1)."""
     p = int(dtypes.finfo(acc).nmant) + 1
-    assert p == BITS[acc]  # IEEE 754-2019 §3.6; bfloat16 from memory, as above
+    assert p == BITS[acc]  # IEEE 754-2019 §3.3; bfloat16 from memory, as above
     declared = SequentialParamSums(op, "float32", acc).kernel(
         f"sums in {acc}", precision={"output_accumulate": {"dweight": acc, "dbias": acc}})
     undeclared = SequentialParamSums(op, "float32", acc).kernel(f"sums in {acc}, undeclared")
