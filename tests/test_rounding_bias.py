@@ -228,3 +228,32 @@ def test_pytest_plugin_reports_the_run_level_finding(tmp_path):
     assert good.returncode == 0, good.stdout[-3000:]
     assert "FAILED (run level)" not in good.stdout
     assert good.stdout.count("effective precision: layer_norm bfloat16") == 4  # y, dx, dweight, dbias
+
+
+def test_hostile_statistics_in_a_document_are_refused(tmp_path):
+    """A results document whose per-output rounding counts are not counts (a string, a negative number),
+    or whose run-level section lacks a field the writers read, is refused by the one reader of documents
+    with the field named (conformance.documents, docs/results-schema.json); the untouched document loads."""
+    import copy
+    import json
+
+    from conformance.documents import DocumentError, loads
+    from conformance.run import RunOptions, run_check
+
+    doc = run_check(rounded_oracle(ops.get("layer_norm"), "bfloat16"), RunOptions(tier="smoke", workers=1))
+    assert loads(json.dumps(doc))["rounding_bias"]
+    for path, value in ((("cases", 0, "outputs", 0, "rounding", "deviations"), "many"),
+                        (("cases", 0, "outputs", 0, "rounding", "toward_zero"), -3),
+                        (("rounding_bias", 0, "verdict"), "fine"),
+                        (("effective_precision", 0, "declared_bits"), None)):
+        bad = copy.deepcopy(doc)
+        node = bad
+        for p in path[:-1]:
+            node = node[p]
+        if value is None:
+            del node[path[-1]]
+        else:
+            node[path[-1]] = value
+        with pytest.raises(DocumentError) as err:
+            loads(json.dumps(bad), "hostile.json")
+        assert path[-1] in str(err.value) or path[0] in str(err.value)
