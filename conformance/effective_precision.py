@@ -65,14 +65,17 @@ def run_precision(cases: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
     fraction of elements correctly rounded (None for float64 outputs)."""
     rows: dict[tuple[str, str, str], dict[str, Any]] = {}
     for key, c, o, st in run_outputs(cases, "effective"):
-        r = rows.setdefault(key, {"cases": 0, "u_acc": 0.0, "u_eff": 0.0, "case_id": None, "beyond": 0,
+        r = rows.setdefault(key, {"cases": 0, "u_acc": 0.0, "bits": None, "case_id": None, "beyond": 0,
                                   "elements": 0, "correctly_rounded": 0, "rounded": False,
                                   "format": o.get("dtype", "")})
         r["cases"] += 1
-        r["u_acc"] = max(r["u_acc"], float(st.get("u_acc", 0.0)))
-        ue = float(st.get("u_acc", 0.0)) * float(st.get("ratio", 0.0)) * float(st.get("scale", 1.0))
-        if ue > r["u_eff"]:
-            r["u_eff"], r["case_id"] = ue, c["id"]
+        ua, ratio, scale = (float(st.get(k, d)) for k, d in (("u_acc", 0.0), ("ratio", 0.0), ("scale", 1.0)))
+        r["u_acc"] = max(r["u_acc"], ua)
+        if ua > 0 and ratio > 0 and scale > 0:
+            # in log2: the factors of a document read from a file may overflow as a product
+            be = -(math.log2(ua) + math.log2(ratio) + math.log2(scale))
+            if r["bits"] is None or be < r["bits"]:
+                r["bits"], r["case_id"] = be, c["id"]
         r["beyond"] += int(st.get("beyond", 0))
         rs = o.get("rounding") or {}
         if rs:
@@ -83,7 +86,7 @@ def run_precision(cases: Iterable[dict[str, Any]]) -> list[dict[str, Any]]:
     for (op, dt, name), r in sorted(rows.items()):
         if not r["u_acc"] > 0:
             continue
-        eff = _bits(r["u_eff"]) if r["u_eff"] > 0 else None
+        eff = r["bits"]
         out.append({"op": op, "dtype": dt, "output": name, "format": r["format"], "cases": r["cases"],
                     "declared_bits": _bits(r["u_acc"]), "effective_bits": eff, "case": r["case_id"],
                     "beyond_rounding": r["beyond"],

@@ -22,6 +22,7 @@ flagged in a run is at most ALPHA by the union bound). docs/tolerances.md ("Roun
 from __future__ import annotations
 
 import math
+import sys
 from typing import Any, Iterable
 
 import numpy as np
@@ -139,6 +140,12 @@ def _rows(cases: Iterable[dict[str, Any]]) -> dict[tuple[str, str, str], dict[st
     return rows
 
 
+def _finite(x: float) -> float:
+    """x, or float64's largest magnitude of its sign where a document's sums overflowed (JSON has no inf)."""
+    x = float(x)
+    return x if math.isfinite(x) else (0.0 if math.isnan(x) else math.copysign(sys.float_info.max, x))
+
+
 def run_bias(cases: Iterable[dict[str, Any]], alpha: float = ALPHA) -> list[dict[str, Any]]:
     """Per (op, dtype, output) of a run (cases as results-document dicts): the summed counts, the mean
     signed ULP error on determined elements (positive away from zero), each direction's p-value, the
@@ -161,7 +168,7 @@ def run_bias(cases: Iterable[dict[str, Any]], alpha: float = ALPHA) -> list[dict
             verdict = "no evidence"
         out.append({"op": op, "dtype": dt, "output": name, "format": r["format"], "cases": r["cases"],
                     **{k: r[k] for k in _COUNTS},
-                    "mean_ulp": (r["sum_ulp"] / r["determined"]) if r["determined"] else 0.0,
+                    "mean_ulp": _finite(r["sum_ulp"] / r["determined"]) if r["determined"] else 0.0,
                     "p_values": pv, "direction": worst if verdict == "flagged" else "", "level": level,
                     "alpha": alpha, "tests": m, "verdict": verdict,
                     # no rounding declaration exists (kernel.Precision): every kernel declares round to nearest
