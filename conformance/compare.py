@@ -56,6 +56,10 @@ class OutputResult:
     accepted_inconclusive: bool = False
     #: a quantized output (conformance.quantized): elements on another level than the oracle's, and by how many
     levels: dict[str, Any] = field(default_factory=dict)
+    #: against the correctly rounded oracle value (conformance.rounding_bias.element_statistics); {} for float64
+    rounding: dict[str, Any] = field(default_factory=dict)
+    #: the error fitted to the bound's model (conformance.effective_precision.case_statistics)
+    effective: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: tuples as lists, non-finite floats as "inf"/"-inf"/"nan"."""
@@ -260,8 +264,28 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
         res.inconclusive = uninformative(exp, b, float(bound.terms.get("reference_scale", 0.0)),
                                          int(bound.terms.get("nonfinite_bound_elements", 0)),
                                          max(float(dtypes.finfo(dtype).tiny), float(np.finfo(np.float32).tiny)))
+    if bound.kind == "derived":  # numerics of the run (rounding bias, effective precision): issue 11
+        _numerics(res, a, exp, b, err, bound, dtype, both)
     res.message = _message(res, bound)
     return res
+
+
+def _numerics(res: OutputResult, a: np.ndarray, exp: np.ndarray, b: np.ndarray, err: np.ndarray, bound: Bound,
+              dtype: str, both: np.ndarray) -> None:
+    """The per-case statistics that the run-level rounding-bias test and effective precision add up."""
+    from .effective_precision import case_statistics
+    from .rounding_bias import element_statistics
+
+    if np.ndim(both) == 0:  # every element finite in both: no copies
+        a_k, e_k, err_k = a, exp, err
+    else:  # NaN marks the elements whose class the comparison judged: left out below
+        keep = np.broadcast_to(both, exp.shape)
+        a_k, e_k, err_k = np.where(keep, a, np.nan), np.where(keep, exp, np.nan), np.where(keep, err, np.nan)
+    res.rounding = element_statistics(a_k, e_k, b, dtype)
+    u_acc = bound.terms.get("u_o", bound.terms.get("u_a"))
+    # the probabilistic model's bound is lam times its one-sigma error (docs/tolerances.md, Summation models)
+    scale = float(bound.terms.get("lam", 1.0)) if "probabilistic" in bound.formula else 1.0
+    res.effective = case_statistics(err_k, e_k, b, dtype, u_acc, scale)
 
 
 def _message(r: OutputResult, bound: Bound) -> str:
@@ -287,4 +311,8 @@ def _message(r: OutputResult, bound: Bound) -> str:
     lines.append(f"Bound: {bound.formula}")
     if acc:
         lines.append("Accepted:" + acc[1:])
+    rs = r.rounding
+    if rs.get("elements"):  # against the correctly rounded value (conformance.rounding_bias)
+        lines.append(f"Correctly rounded ({r.dtype}): {rs['correctly_rounded']} / {rs['elements']}; off it: "
+                     f"{rs['off_toward_zero']} toward zero, {rs['off_away']} away from zero")
     return "\n".join(lines)

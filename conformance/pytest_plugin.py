@@ -16,6 +16,7 @@ a waived failure is an expected failure (xfail), an expired waiver fails its ite
 
 from __future__ import annotations
 
+import json
 from typing import Any
 
 import pytest
@@ -94,6 +95,8 @@ class _State:
         self.pools: dict[int, Any] = {}
         self.uses: list[Any] = []
         self.statuses: dict[str, int] = {}
+        self.numerics: dict[str, list[dict[str, Any]]] = {}  # kernel name -> cases' per-output statistics
+        self.numerics_text: list[str] = []
 
     def pool(self, i: int):
         if i not in self.pools:
@@ -118,6 +121,32 @@ class _State:
         self.uses.append(_unpack(str(props["refnorm_waivers"])))
         st = str(props.get("refnorm_status"))
         self.statuses[st] = self.statuses.get(st, 0) + 1
+        if "refnorm_numerics" in props:
+            kernel, case = json.loads(str(props["refnorm_numerics"]))
+            self.numerics.setdefault(kernel, []).append(case)
+
+    # --- run-level numerics (issue 11): a rounding-bias failure fails the session --------------------------
+    @pytest.hookimpl(tryfirst=True)
+    def pytest_sessionfinish(self, session: pytest.Session, exitstatus: int) -> None:
+        """The run-level rounding-bias test and effective precision over each kernel's cases; a flagged
+        output (directed rounding where round to nearest is declared) makes the session fail."""
+        from conformance.effective_precision import describe as describe_precision
+        from conformance.effective_precision import run_precision
+        from conformance.rounding_bias import describe, flagged, run_bias
+
+        if hasattr(session.config, "workerinput"):  # an xdist worker sees part of the cases: the controller decides
+            return
+        failed = False
+        for kernel, cases in self.numerics.items():
+            rows = run_bias(cases)
+            bad = flagged(rows)
+            failed = failed or bool(bad)
+            self.numerics_text += [f"FAILED (run level) {kernel}: {describe(r)}" for r in bad]
+            self.numerics_text += [f"{kernel}: effective precision: {describe_precision(r, case=False)}"
+                                   for r in run_precision(cases)]
+        if failed and session.exitstatus == 0:
+            session.exitstatus = pytest.ExitCode.TESTS_FAILED
+    # --- end of run-level numerics ----------------------------------------------------------------------
 
     def pytest_terminal_summary(self, terminalreporter, exitstatus, config: pytest.Config) -> None:
         from conformance.gate.waivers import waiver_summary
@@ -144,6 +173,10 @@ class _State:
         if self.uses:
             for w in ws["unmatched"]:
                 tr.write_line(f"warning: waiver #{w['index']} (case {w['case']!r}) matches no case run here")
+        from conformance.text import visible
+
+        for line in self.numerics_text:
+            tr.write_line(visible(line))
         tr.write_line("note: " + CAUTION)
 
 
@@ -239,6 +272,10 @@ class CaseItem(pytest.Item):
         self.user_properties.append(("refnorm_budget_used", ",".join(f"{o['name']}={o.get('budget_used')}"
                                                                      for o in res.get("outputs", []))))
         self.user_properties.append(("refnorm_waivers", _pack(use)))
+        self.user_properties.append(("refnorm_numerics", json.dumps([plan.kernel.name, {  # run-level numerics
+            "id": res["id"], "status": res["status"], "case": {"op": self.case.op, "dtype": self.case.dtype},
+            "outputs": [{k: o.get(k) for k in ("name", "dtype", "rounding", "effective")}
+                        for o in res.get("outputs", [])]}])))
         if outcome == "passed":
             return
         if outcome == "skipped":

@@ -163,17 +163,43 @@ def counts(cases: Iterable[CaseResult]) -> dict[str, int]:
 
 
 def verdict(cases: list[CaseResult], complete: bool) -> str:
-    """incomplete, not conformant (a failure), inconclusive (a pass that is not evidence, not accepted:
+    """incomplete, not conformant (a failed case, or a run-level rounding-bias failure:
+    conformance.rounding_bias), inconclusive (a pass that is not evidence, not accepted:
     conformance.evidence), no cases run, or conformant."""
     if not complete:
         return "incomplete"
     if any(c.status in BAD for c in cases):
+        return "not conformant"
+    if numerics_failures(cases):  # a run-level finding: directed rounding where round to nearest is declared
         return "not conformant"
     if any(c.status == "inconclusive" for c in cases):
         return "inconclusive"
     if not any(c.status == "passed" for c in cases):
         return "no cases run"
     return "conformant"
+
+
+# --- run-level numerics (issue 11: rounding bias, effective precision) ---------------------------------
+def _case_dicts(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
+    return [{"id": c.id, "case": c.case, "status": c.status, "outputs": c.outputs} for c in cases]
+
+
+def numerics(cases: Iterable[CaseResult]) -> dict[str, list[dict[str, Any]]]:
+    """The document's run-level sections: rounding_bias (rounding_bias.run_bias) and effective_precision
+    (effective_precision.run_precision), per (op, dtype, output)."""
+    from .effective_precision import run_precision
+    from .rounding_bias import run_bias
+
+    ds = _case_dicts(cases)
+    return {"rounding_bias": run_bias(ds), "effective_precision": run_precision(ds)}
+
+
+def numerics_failures(cases: Iterable[CaseResult]) -> list[dict[str, Any]]:
+    """The rounding-bias rows of a run that fail it (directed rounding suspected beyond the stated alpha)."""
+    from .rounding_bias import flagged, run_bias
+
+    return flagged(run_bias(_case_dicts(cases)))
+# --- end of run-level numerics ---------------------------------------------------------------------------
 
 
 def accept_inconclusive(cases: list[CaseResult], names: Iterable[str]) -> list[CaseResult]:
@@ -269,6 +295,7 @@ def build_document(kernel_decl: dict[str, Any], run: dict[str, Any], cases: list
         "counts": counts(cases),
         "summary": summarize(cases),
         "cases": [c.to_dict() for c in cases],
+        **numerics(cases),
         "caution": CAUTION,
     })
 

@@ -60,7 +60,7 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
     lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc), *evidence_lines(doc),
-             *level_lines(doc)]
+             *level_lines(doc), *numerics_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
 
@@ -116,3 +116,15 @@ def incomplete_lines(doc: dict[str, Any], shown: int = 5) -> list[str]:
     if cov.get("unexpected"):
         out.append(f"incomplete: results for cases that were not selected: {ids(cov['unexpected'])}")
     return out
+
+
+def numerics_lines(doc: dict[str, Any]) -> list[str]:
+    """The run-level numerics (issue 11): the rounding-bias test's findings, then the effective precision
+    of each output (conformance.rounding_bias, conformance.effective_precision)."""
+    from .effective_precision import precision_lines
+    from .rounding_bias import bias_lines
+
+    eff = precision_lines(doc)
+    return [visible(x) for x in bias_lines(doc)] + (["effective precision (docs/tolerances.md, Effective "
+                                                      "precision): an estimate, not part of the verdict"]
+                                                     + [f"  {visible(x)}" for x in eff] if eff else [])

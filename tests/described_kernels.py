@@ -38,20 +38,23 @@ def _replica_backward(dy, x, weight, *, rank, comm, axis, eps, **_):
     return {"dx": g.dx[rank].astype(x.dtype), "dweight": g.dweight.astype(x.dtype), "dbias": g.dbias.astype(x.dtype)}
 
 
-def rounded_oracle(spec, dtype: str) -> Kernel:
+def rounded_oracle(spec, dtype: str, rnd=None, precision=None) -> Kernel:
     """forward returns y (and h for a fused residual add), backward dx, dweight, dbias, each rounded to
-    the storage format ``dtype``. A multi-replica op's: each replica gathers the shards, and returns its
-    share of the oracle's y and dx and the global statistics and parameter gradients, rounded."""
+    the storage format ``dtype`` (by ``rnd``, a float64 array -> the format, where given: to nearest
+    by default); ``precision`` is the declared Precision (the default's where None). A multi-replica
+    op's: each replica gathers the shards, and returns its share of the oracle's y and dx and the
+    global statistics and parameter gradients, rounded to nearest."""
     st = dtypes.dtype_of(dtype)
     if spec.replicas:
         from conformance.kernel import Conventions
 
         return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False,
                       forward=_replica_forward, backward=_replica_backward, outputs=("y", "mean", "rstd"),
-                      conventions=Conventions(saved=("mean", "rstd")))
+                      conventions=Conventions(saved=("mean", "rstd")), precision=precision)
+    cast = rnd or (lambda a: np.asarray(a).astype(st))
 
     def rnd(a):
-        return None if a is None else np.asarray(a).astype(st)
+        return None if a is None else cast(np.asarray(a))
 
     def up(kw):
         return {k: (v.astype(np.float64) if isinstance(v, np.ndarray) else v) for k, v in kw.items()}
@@ -75,4 +78,5 @@ def rounded_oracle(spec, dtype: str) -> Kernel:
 
     entries = {e: (forward if e.startswith("forward") else backward) for e in spec.entry_points}
     return Kernel(name=f"rounded oracle {spec.name}", op=spec.name, dtypes=(dtype,), updates_running=False,
-                  outputs=("y", *spec.residual_outputs), **entries)
+                  outputs=("y", *spec.residual_outputs), **({"precision": precision} if precision else {}),
+                  **entries)

@@ -407,7 +407,7 @@ def test_generated_hostile_documents_are_refused_or_shown(real_doc):
     """N_HOSTILE mutations of generated documents (a field deleted or given another type, a string
     made hostile, counts or ids or verdict made inconsistent, the text truncated, NaN/Infinity/1e999,
     5000-digit integers, nesting 65 to 10^5 deep, duplicate keys, bytes that are not UTF-8, a BOM,
-    another top level, an empty file, a lone surrogate; each kind in turn): each is refused with the file
+    another top level, an empty file, a lone surrogate; the kind drawn from the data): each is refused with the file
     and the changed field named, or it is valid and every writer renders it. Measured: 500 in about 19 s."""
     kinds: dict[str, int] = {}
     n = [0]
@@ -416,7 +416,9 @@ def test_generated_hostile_documents_are_refused_or_shown(real_doc):
     @given(st.data())
     def run(data):
         doc = data.draw(G.results_documents())
-        kind = G.ALL_KINDS[n[0] % len(G.ALL_KINDS)]  # every kind in turn, about 33 times each
+        # the kind is drawn from the data (not from a counter outside it), so that a replayed input is the
+        # same input: hypothesis refuses data generation that depends on external state
+        kind = data.draw(st.sampled_from(G.ALL_KINDS))
         n[0] += 1
         m = data.draw(G.hostile(doc, kind))
         kinds[m.kind] = kinds.get(m.kind, 0) + 1

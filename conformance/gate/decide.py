@@ -20,7 +20,7 @@ from __future__ import annotations
 from datetime import date
 from typing import Any, Mapping, Sequence
 
-from ..results import as_float, case_results, counts, summarize, verdict
+from ..results import as_float, case_results, counts, numerics, numerics_failures, summarize, verdict
 from ..text import visible
 from .baseline import baseline_index, baseline_notes, regress_case, unregress_case
 from .profile import DEFAULT_GROWTH, DEFAULT_GROWTH_FLOOR, Waiver
@@ -38,6 +38,7 @@ def refresh(doc: dict[str, Any]) -> dict[str, Any]:
     doc["counts"] = counts(cases)
     doc["summary"] = summarize(cases)
     doc["verdict"] = verdict(cases, bool(doc.get("complete", True)))
+    doc.update(numerics(cases))  # run-level rounding bias and effective precision
     return doc
 
 
@@ -82,6 +83,10 @@ def apply_gate(doc: dict[str, Any], *, waivers: Sequence[Waiver] = (), today: da
     if outcomes["failed"] or outcomes["error"]:
         reasons.append(f"{outcomes['failed']} case(s) failed and {outcomes['error']} crashed, timed out or "
                        "raised, not waived")
+    biased = numerics_failures(case_results(doc))
+    if biased:  # a run-level failure no waiver of a case covers (conformance.rounding_bias)
+        reasons.append("directed rounding suspected where round to nearest is declared: "
+                       + ", ".join(f"{r['op']} {r['dtype']} {r['output']} ({r['direction']})" for r in biased))
     inconclusive = (f"{outcomes['inconclusive']} case(s) passed only under bounds that are not informative "
                     "(inconclusive) and their outputs are not accepted (--accept-inconclusive, profile key "
                     "accept_inconclusive)") if outcomes["inconclusive"] else None

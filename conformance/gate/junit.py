@@ -88,6 +88,17 @@ def _suite(doc: Mapping[str, Any]) -> ET.Element:
         elif outcome in ("skipped", "waived"):
             n["skipped"] += 1
             ET.SubElement(tc, "skipped", message=_first_line(msg, outcome), type=outcome)
+    for r in doc.get("rounding_bias") or []:  # run-level failures (issue 11): one testcase per flagged output
+        if r.get("failure"):
+            from ..rounding_bias import describe
+
+            tc = ET.SubElement(suite, "testcase", classname=_clean(f"{r.get('op')}.{r.get('dtype')}"),
+                               name=_clean(f"run level: rounding bias of {r.get('output')}"), time="0.000")
+            n["tests"] += 1
+            n["failures"] += 1
+            text = describe(r)
+            el = ET.SubElement(tc, "failure", message=_first_line(text, "failed"), type="rounding_bias")
+            el.text = _clean(text)
     suite.set("tests", str(n["tests"]))
     suite.set("failures", str(n["failures"]))
     suite.set("errors", str(n["errors"]))

@@ -134,6 +134,22 @@ def _levels_table(doc: dict[str, Any]) -> str:
     return "".join(out)
 
 
+def _numerics_tables(doc: dict[str, Any]) -> str:
+    """The run-level rounding-bias test and effective precision (conformance.report.numerics)."""
+    from .numerics import numerics_tables
+
+    out = []
+    for title, note, head, rows in numerics_tables(doc):
+        slug = title.lower().replace(" ", "-")
+        out.append(f'<h3 id="{slug}">{_e(title)}</h3><p class="note">{_e(note)}</p>'
+                   f'<table class="summary" id="{slug}-table"><thead><tr>')
+        out += [f"<th>{_e(h)}</th>" for h in head]
+        out.append("</tr></thead><tbody>")
+        out += ["<tr>" + "".join(f"<td>{_e(str(v))}</td>" for v in r) + "</tr>" for r in rows]
+        out.append("</tbody></table>")
+    return "".join(out)
+
+
 def _summary_table(doc: dict[str, Any]) -> str:
     rows = C.table_rows(doc)
     if not rows:
@@ -343,7 +359,7 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
         '<p class="note">Max errors are over every element of every case of the row; the fraction of the bound '
         "is max over elements of |kernel − oracle| / bound (passing needs ≤ 1), with the case where it was "
         "largest and that case's bound below each row.</p>",
-        _summary_table(doc), _levels_table(doc), "</section>",
+        _summary_table(doc), _levels_table(doc), _numerics_tables(doc), "</section>",
         _peers_section(doc, peers, peers_note),
         _failures_section(doc),
         _plots_section(plots),

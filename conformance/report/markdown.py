@@ -86,6 +86,19 @@ def _summary(doc: dict[str, Any]) -> list[str]:
         out += [f"- {md(r.dtype)} {md(r.output)}: <code>{md(b, None)}</code>" for r, b in bounds]
         out += ["", "</details>"]
     out += _levels(doc)
+    out += _numerics(doc)
+    return out
+
+
+def _numerics(doc: dict[str, Any]) -> list[str]:
+    """The run-level rounding-bias test and effective precision (conformance.report.numerics)."""
+    from .numerics import numerics_tables
+
+    out = []
+    for title, note, head, rows in numerics_tables(doc):
+        out += ["", f"**{md(title)}.** {md(note, None)}", "", "| " + " | ".join(md(h) for h in head) + " |",
+                "|" + "---|" * len(head)]
+        out += ["| " + " | ".join(md(v) for v in r) + " |" for r in rows]
     return out
 
 
