@@ -342,5 +342,16 @@ def _execute(kernel: Kernel, case: Case, seed: int,
         results.append(r)
     if kernel.quantization is not None and case.out:
         results += quantized.check_outputs(kernel, case, prec, conv, inp64, fwd, raw)
-    return judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
-                  oracle_s=oracle_s)
+    res = judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
+                 oracle_s=oracle_s)
+    # --- diagnosis (conformance.diagnosis): only adds information to a failed case, never changes it
+    if res.status == "failed":
+        try:
+            from ..diagnosis import attach
+
+            attach(res, kernel=kernel, case=case, prec=prec, conv=conv, inp=inp, inp64=inp64, raw=raw,
+                   expected=expected, bounds=bounds, results=results, overrides=overrides)
+        except Exception:
+            pass  # attach records its own errors; this guards its import
+    # --- end diagnosis
+    return res
