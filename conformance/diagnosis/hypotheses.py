@@ -118,7 +118,8 @@ def modelled(ev: Evidence, names: tuple[str, ...], label: str, steps: Steps, *, 
     if not names:
         return []
     v = ev.inp64 if view is None else view
-    kw = dict(eps=ev.case.eps, placement=ev.conv.eps_placement, center=ev.spec.centered, names=names)
+    kw = dict(eps=ev.case.eps, placement=ev.conv.eps_placement, center=ev.spec.centered, names=names,
+              running=(ev.conv.momentum_convention, ev.conv.running_var_estimator, ev.spec.running_from_samples))
     grp = ev.spec.axes.view(ev.case)
     got = model_outputs(ev.case, grp, v, steps=steps, **kw)
     other = model_outputs(ev.case, grp, v, steps=replace(steps, order="reversed"), **kw) if spread else None
@@ -525,7 +526,7 @@ HYPOTHESES: tuple[Hypothesis, ...] = (
                "IEEE 754-2019 §7.4 (overflow), §7.2 (Inf - Inf)", RSTD_DEPENDENT + ("var",), _squares_overflow),
     Hypothesis("one_pass_variance", "bug", "var = E[x^2] - E[x]^2 in the accumulation format",
                "Chan, Golub & LeVeque 1983, §1 (from memory): cancellation of order kappa^2 u",
-               RSTD_DEPENDENT + ("mean", "var"), _one_pass),
+               RSTD_DEPENDENT + ("mean", "var", "running_var"), _one_pass),
     Hypothesis("storage_sums", "precision", "sums accumulated in the storage format",
                "Higham 2002, §4.2, and Higham & Mary 2019 (the declared summation model with the storage u)",
                X_DEPENDENT + ("dbias", "running_mean", "running_var"), _storage_sums),

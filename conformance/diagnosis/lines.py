@@ -38,7 +38,8 @@ def diagnosis_lines(doc: dict[str, Any], shown: int = 3) -> list[str]:
             line += f"; {len(ranked) - shown} other"
         corr = correlation_text([d for _, d in items])
         out.append(line)
-        first_id, first = items[0]
+        top = ranked[0][0]
+        first_id, first = next((cid, d) for cid, d in items if (d.get("cause") or "") == top)
         out.append(f"  e.g. {visible(first_id)}: {visible(first.get('text', ''))}")
         if corr:
             out.append(f"  {corr}")

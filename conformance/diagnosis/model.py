@@ -84,12 +84,14 @@ def _param_terms(t: np.ndarray, case: Any, view: Any, steps: Steps) -> np.ndarra
 
 
 def model_outputs(case: Any, view: Any, inp: dict[str, Any], *, eps: float, placement: str, center: bool,
-                  steps: Steps, names: tuple[str, ...]) -> dict[str, np.ndarray]:
+                  steps: Steps, names: tuple[str, ...], running: tuple[str, str, bool] = ("new", "unbiased", False)
+                  ) -> dict[str, np.ndarray]:
     """The outputs ``names`` of a kernel that computes with ``steps``, in the harness's shapes (float64).
 
     ``inp`` is the oracle's float64 view of the inputs (x the normalized values, weight with any offset
     added); ``view`` the op's View (conformance.ops.axes). Training mode, or eval mode with the running
-    statistics (mean, var) as constants."""
+    statistics (mean, var) as constants. ``running`` = (momentum convention, running-variance estimator,
+    whether the running statistics are the batch mean of per-sample ones) for the running outputs."""
     red, n = view.red, view.n
     xv = np.asarray(inp["x"], np.float64).reshape(view.view_shape)
     w = inp.get("weight")
@@ -130,6 +132,8 @@ def model_outputs(case: Any, view: Any, inp: dict[str, Any], *, eps: float, plac
         out["rstd"] = np.broadcast_to(rstd, _kd(view)).reshape(view.stat_shape)
         out["var"] = np.broadcast_to(var, _kd(view)).reshape(view.stat_shape)
         out["std"] = 1.0 / out["rstd"]
+        if train and mean is not None and ("running_mean" in names or "running_var" in names):
+            out.update(_running(case, view, inp, mean, var, running))
         if any(k in names for k in ("dx", "dweight", "dbias")):
             dyv = np.asarray(inp["dy"], np.float64).reshape(view.view_shape)
             g = dyv if wv is None else dyv * wv
@@ -146,6 +150,32 @@ def model_outputs(case: Any, view: Any, inp: dict[str, Any], *, eps: float, plac
             out["dweight"] = np.sum(_param_terms(dyv * xhat, case, view, steps), axis=pr).reshape(view.param_shape)
             out["dbias"] = np.sum(_param_terms(dyv, case, view, steps), axis=pr).reshape(view.param_shape)
     return {k: v for k, v in out.items() if k in names}
+
+
+def _running(case: Any, view: Any, inp: dict[str, Any], mean: np.ndarray, var: np.ndarray,
+             running: tuple[str, str, bool]) -> dict[str, np.ndarray]:
+    """r' = (1 - m) r + m s ("new") or m r + (1 - m) s ("old"); r + (s - r)/(k + 1) for momentum None;
+    s the batch mean and the (unbiased or biased) batch variance (docs/conventions.md, Running statistics)."""
+    if inp.get("running_mean") is None:
+        return {}
+    convention, estimator, from_samples = running
+    n = view.n
+    c = np.asarray(inp["running_mean"]).shape
+    m = np.broadcast_to(mean, _kd(view)).reshape(view.stat_shape)
+    v = np.broadcast_to(var, _kd(view)).reshape(view.stat_shape)
+    if estimator == "unbiased":
+        v = v * (n / (n - 1)) if n > 1 else np.full_like(v, np.nan)
+    if from_samples:
+        m, v = m.mean(axis=0), v.mean(axis=0)
+    out = {}
+    for name, s in (("running_mean", m.reshape(c)), ("running_var", v.reshape(c))):
+        r = np.asarray(inp[name], np.float64)
+        if case.momentum is None:
+            out[name] = r + (s - r) / (case.batches_seen + 1)
+        else:
+            k = float(case.momentum)
+            out[name] = (1 - k) * r + k * s if convention == "new" else k * r + (1 - k) * s
+    return out
 
 
 def _kd(view: Any) -> tuple[int, ...]:

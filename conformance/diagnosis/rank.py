@@ -3,10 +3,10 @@
 For an output that failed with budget B (max |kernel - oracle| / bound), each applicable hypothesis
 gives predicted values and a bound; the kernel's budget under it is max |kernel - predicted| / bound
 (conformance.compare, the same comparison). A hypothesis *explains* the failure when that budget is
-at most 1. Among those come first: the one that explains the most of the case's failing outputs (one
-cause for all of them); then one that predicts other values than the oracle's (by more than the
-declared bound) before one that only widens the bound, as the more specific claim confirmed; then the
-one that brings the kernel's values nearest in units of the declared bound; then the one whose bound
+at most 1. Among those come first: one that predicts other values than the oracle's (by more than the
+declared bound) or another convention, before one that only widens the bound, as the more specific
+claim confirmed; then the one that explains the most of the case's failing outputs (one cause for all
+of them); then the one that brings the kernel's values nearest in units of the declared bound; then the one whose bound
 is tightest. When none explains it, the closest is named with how far it still is, and locate.py
 says where the error lives. A diagnosis adds information only: the verdict was made before it and stays.
 """
@@ -118,8 +118,8 @@ def diagnose(ev: Evidence, failed: dict[str, Any], dtype_of_output, limit_s: flo
         for d in hyps:
             d["explains_outputs"] = cover.get(d["key"], 0)
         hyps.sort(key=lambda d: (not d["explained"], not d["informative"],
-                                 -d["explains_outputs"] if d["explained"] else 0,
                                  not d["moves"] if d["explained"] else 0,
+                                 -d["explains_outputs"] if d["explained"] else 0,
                                  _finite(d["residual"]) if d["explained"] else _finite(d["budget"]),
                                  _bucket(d["looseness"]),
                                  _finite(d["budget"]), d["mismatched"]))
