@@ -327,3 +327,58 @@ def test_the_model_with_no_step_changed_is_the_oracle(op):
     for name in names:
         scale = max(1.0, float(np.max(np.abs(want[name]))))
         np.testing.assert_allclose(got[name], want[name], rtol=0, atol=64 * g * scale, err_msg=name)
+
+
+class _ChannelsLastReadFirst(sb.NumpyNorm):
+    """A channel-axis bug: the contiguous channels-last buffer (N, *spatial, C) is read as channels first
+    (N, C, *spatial), and the outputs written back into the case's shape (common practice: a kernel that
+    assumes NCHW and is handed NHWC memory)."""
+
+    def _misread(self, a):
+        a = np.ascontiguousarray(a)
+        return a.reshape(a.shape[0], a.shape[-1], *a.shape[1:-1])
+
+    def forward(self, x, weight=None, bias=None, *, axis=1, **kw):
+        shape = np.shape(x)
+        out = super().forward(self._misread(x), weight, bias, axis=1, **kw)
+        return (out[0].reshape(shape), *out[1:])
+
+    def backward(self, dy, x, weight=None, *, axis=1, **kw):
+        shape = np.shape(x)
+        dx, dw, db = super().backward(self._misread(dy), self._misread(x), weight, axis=1, **kw)
+        return dx.reshape(shape), dw, db
+
+
+@pytest.mark.parametrize("op", [BN, GN])
+def test_channels_taken_from_the_wrong_axis(op):
+    """docs/conventions.md (layouts): channels-last data read as channels-first is named as the channel axis."""
+    k = _ChannelsLastReadFirst(op).kernel("channels-last read as channels-first")
+    case = next(c for c in catalog([op], ["float32"], "standard") if c.layout == "channels_last"
+                and c.strides == "contiguous" and c.values == "normal" and c.mode == "train" and len(c.shape) == 4
+                and c.shape[1] != c.shape[-1])
+    res = execute_case(k, case, 0)
+    assert res.status == "failed"
+    for name in ("y", "mean", "rstd", "dx", "dweight"):
+        assert _first_cause(res, name).get("cause_key") == "channel_axis", (name, _first_cause(res, name)["text"])
+
+
+def test_summary_lines_show_hostile_text_and_refused_fields():
+    """A results file is input: control characters in a diagnosis are shown, not sent to the terminal
+    (conformance.text.visible), and a diagnosis of the wrong type is refused by the schema."""
+    import json
+
+    from conformance.diagnosis import diagnosis_lines
+    from conformance.documents import DocumentError, check
+
+    bug = sb.BUGS["biased_running_var"]
+    doc = run_check(bug.kernel, RunOptions(tier="standard", dtypes=(bug.storage,), workers=1,
+                                           case_ids=SEEDED["biased_running_var"][2]), quiet=True)
+    doc = json.loads(json.dumps(doc))
+    out = next(o for o in doc["cases"][0]["outputs"] if o.get("diagnosis"))
+    out["diagnosis"]["text"] = "evil \x1b[2J text"
+    out["diagnosis"]["cause"] = "cause\x07"
+    lines = "\n".join(diagnosis_lines(check(doc)))
+    assert "\x1b" not in lines and "\x07" not in lines and "evil" in lines
+    out["diagnosis"]["hypotheses"] = "not a list"
+    with pytest.raises(DocumentError, match="diagnosis"):
+        check(doc)

@@ -317,6 +317,35 @@ def _memory_order(ev: Evidence, names):
     return rejudge(ev, names, f"x and dy read in memory order, strides ignored ({ev.case.strides})", view=view)
 
 
+def _layout_misread(ev: Evidence, names):
+    """The kernel takes the buffer of x (and dy) in the other channel layout: a channels-last buffer read as
+    channels first, or the reverse; what it writes is read back in the case's own layout."""
+    c = ev.case
+    if ev.spec.axes.layouts == ("trailing",) or c.strides != "contiguous" or len(c.shape) < 3:
+        return []
+    n, ch = c.shape[0], c.channels
+    spatial = tuple(d for i, d in enumerate(c.shape) if i not in (0, c.channel_axis))
+    other = "channels_last" if c.layout == "channels_first" else "channels_first"
+    shape2 = (n, *spatial, ch) if other == "channels_last" else (n, ch, *spatial)
+    if shape2 == tuple(c.shape):
+        return []
+    case2 = replace(c, layout=other, shape=shape2)
+    view = dict(ev.inp64)
+    for k in ("x", "dy", "residual", "dh"):
+        if view.get(k) is not None and np.shape(view[k]) == tuple(c.shape):
+            view[k] = np.asarray(view[k]).reshape(shape2)
+    got = rejudge(ev, names, f"the buffer read as {other}", case=case2, view=view)
+    for p in got:
+        for name, (e, b) in list(p.values.items()):
+            if np.shape(e) == shape2:
+                vals = np.broadcast_to(np.asarray(b.values, np.float64), shape2).reshape(c.shape)
+                acc = tuple(replace(a, mask=np.broadcast_to(np.asarray(a.mask), shape2).reshape(c.shape),
+                                    value=None if a.value is None else
+                                    np.broadcast_to(np.asarray(a.value), shape2).reshape(c.shape)) for a in b.accept)
+                p.values[name] = (e.reshape(c.shape), replace(b, values=vals, accept=acc))
+    return got
+
+
 def _missing(param: str):
     def predict(ev: Evidence, names):
         if getattr(ev.case, param) in ("none", "zero" if param == "bias" else "ones"):
@@ -512,6 +541,9 @@ HYPOTHESES: tuple[Hypothesis, ...] = (
                "x and dy read as raw memory in address order (strides ignored; channels-last memory misread)",
                "NumPy ndarray.strides: only a C-contiguous array holds its logical order in memory",
                X_DEPENDENT + ("dbias",), _memory_order),
+    Hypothesis("channel_axis", "bug", "the channels taken from the wrong axis: the buffer read in the other layout",
+               f"{CONV}, Group norm channel grouping and layouts: channels-first and channels-last are both in use",
+               X_DEPENDENT + ("dbias",), _layout_misread),
     Hypothesis("missing_weight", "bug", "the weight is not applied", "common practice", ("y", "dx"),
                _missing("weight")),
     Hypothesis("missing_bias", "bug", "the bias is not added", "common practice", ("y",), _missing("bias")),

@@ -147,7 +147,7 @@ def _text(name: str, before: float, best: dict | None, others: list[dict], where
         also = [d["label"] for d in others if d["explained"] and d["label"] != best["label"]]
         weak = "" if best["informative"] else (" (but that bound is not informative: it exceeds the output's own "
                                                "magnitude, so this is consistency, not evidence)")
-        return (f"likely cause of {name}: {best['label']} ({best['explanation']}): under it the error drops from "
+        return (f"likely cause of {name}: {best['label']}: {best['explanation']}. Under it the error drops from "
                 f"{_fmt(before)}x to {_fmt(best['budget'])}x of the bound{weak} [{best['source']}]"
                 + (f"; also consistent: {', '.join(also[:3])}" if also else ""))
     close = (f"; closest: {best['label']}, still {_fmt(best['budget'])}x (from {_fmt(before)}x)" if best
