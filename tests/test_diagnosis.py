@@ -382,3 +382,16 @@ def test_summary_lines_show_hostile_text_and_refused_fields():
     out["diagnosis"]["hypotheses"] = "not a list"
     with pytest.raises(DocumentError, match="diagnosis"):
         check(doc)
+
+
+def test_a_diagnosis_keeps_within_the_cases_time(monkeypatch):
+    """With no time left of the case's timeout, nothing is tried and the diagnosis says so; the verdict stands."""
+    from conformance.run import execute
+
+    bug = sb.BUGS["biased_running_var"]
+    case = _cases(bug.op, bug.storage, SEEDED["biased_running_var"][2])[0]
+    monkeypatch.setattr(execute, "CASE_TIMEOUT_S", 1e-9)
+    res = execute_case(bug.kernel, case, 0)
+    d = _first_cause(res, "running_var")
+    assert res.status == "failed" and d["cause"] is None and d["tried"] == 0 and d["not_tried"]
+    assert "not tried: the diagnosis's time limit" in d["text"]

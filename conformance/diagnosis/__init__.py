@@ -22,15 +22,17 @@ import numpy as np
 from .hypotheses import HYPOTHESES, Evidence, Hypothesis
 from .lines import diagnosis_lines, output_diagnoses
 from .locate import condition_number
-from .rank import diagnose
+from .rank import TIME_LIMIT_S, diagnose
 
 __all__ = ["attach", "diagnose", "diagnosis_lines", "output_diagnoses", "HYPOTHESES", "Hypothesis", "Evidence"]
 
 
-def attach(res: Any, *, kernel, case, prec, conv, inp, inp64, raw, expected, bounds, results, overrides=None) -> None:
+def attach(res: Any, *, kernel, case, prec, conv, inp, inp64, raw, expected, bounds, results, overrides=None,
+           time_left_s: float | None = None) -> None:
     """Add a diagnosis to every failed output of ``res`` (a CaseResult) that was compared element by element.
 
-    Never raises: a diagnosis that fails records why, in the output's ``diagnosis.error``."""
+    ``time_left_s``: what the case may still take (its timeout's share); the diagnosis takes at most that
+    and rank.TIME_LIMIT_S. Never raises: a diagnosis that fails records why, in ``diagnosis.error``."""
     from ..arrays import as_numpy
     from ..results import cap_text
     from ..tolerances import output_dtype
@@ -44,7 +46,8 @@ def attach(res: Any, *, kernel, case, prec, conv, inp, inp64, raw, expected, bou
                       expected=expected, bounds=bounds, overrides=overrides)
         spec = ev.spec
         kappa = condition_number(case, spec, inp64["x"])
-        found = diagnose(ev, failed, lambda n: output_dtype(n, prec))
+        limit = TIME_LIMIT_S if time_left_s is None else max(0.0, min(TIME_LIMIT_S, time_left_s))
+        found = diagnose(ev, failed, lambda n: output_dtype(n, prec), limit_s=limit)
         for d in found.values():
             d["condition"] = kappa if math.isfinite(kappa) else ("inf" if kappa > 0 else "nan")
             d["length"] = int(case.group_length)

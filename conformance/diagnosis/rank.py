@@ -82,7 +82,7 @@ def diagnose(ev: Evidence, failed: dict[str, Any], dtype_of_output, limit_s: flo
         want = tuple(n for n in names if n in h.outputs)
         if not want:
             continue
-        if time.perf_counter() - t0 > limit_s:
+        if time.perf_counter() - t0 >= limit_s:
             skipped.append(h.key)
             continue
         try:
@@ -137,7 +137,8 @@ def diagnose(ev: Evidence, failed: dict[str, Any], dtype_of_output, limit_s: flo
             "not_tried": skipped,
             "errors": errors,
             "where": where,
-            "text": _text(n, before, best, hyps[1:], where),
+            "text": _text(n, before, best, hyps[1:], where) + (
+                f" ({len(skipped)} hypotheses not tried: the diagnosis's time limit)" if skipped else ""),
         }
     return out
 
