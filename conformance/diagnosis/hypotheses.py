@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
+from functools import cached_property
 from typing import Any, Callable
 
 import numpy as np
@@ -62,7 +63,7 @@ class Evidence:
     def spec(self):
         return ops.get(self.case.op)
 
-    @property
+    @cached_property
     def base64(self) -> dict[str, Any]:
         """The kernel's inputs upcast to float64, before the oracle's view of them."""
         return {k: (None if v is None else np.asarray(v).astype(np.float64)) for k, v in self.inp.items()}
