@@ -26,7 +26,7 @@ from .locate import where_text
 __all__ = ["diagnose", "TIME_LIMIT_S", "SHOWN"]
 
 #: Seconds a case's diagnosis may take; hypotheses not reached by then are listed as not tried.
-TIME_LIMIT_S = 3.0
+TIME_LIMIT_S = 1.5
 #: Hypotheses kept per output in the results (the best first).
 SHOWN = 5
 
