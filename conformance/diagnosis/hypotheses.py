@@ -129,7 +129,7 @@ def modelled(ev: Evidence, names: tuple[str, ...], label: str, steps: Steps, *, 
     other = model_outputs(ev.case, grp, v, steps=replace(steps, order="reversed"), **kw) if spread else None
     out = {}
     for n, e in got.items():
-        b = ev.bounds[n]
+        b = _grown(ev, n, e, ev.bounds[n])
         if other is not None:
             with np.errstate(invalid="ignore"):
                 d = np.abs(e - other[n])
@@ -148,8 +148,25 @@ def transformed(ev: Evidence, names: tuple[str, ...], label: str,
         if n in ev.expected:
             e = fn(n, np.asarray(ev.expected[n], np.float64))
             if e is not None:
-                out[n] = (e, ev.bounds[n])
+                out[n] = (e, _grown(ev, n, e, ev.bounds[n]))
     return [Prediction(label, out)] if out else []
+
+
+def _grown(ev: Evidence, name: str, pred: np.ndarray, b: Bound) -> Bound:
+    """The declared bound plus the rounding of what a prediction adds to the oracle's magnitude: the
+    declared bound is sized for |oracle|, so where a model makes an output larger, its final rounding and a
+    few operations in the accumulation format, (u_out + 4 u_acc) (|pred| - |oracle|), are allowed on top
+    (Higham 2002, §2.2: fl(x op y) = (x op y)(1 + d), |d| <= u)."""
+    from ..tolerances import output_dtype
+
+    p = ev.prec.resolved()
+    u = dtypes.unit_roundoff(output_dtype(name, p)) + 4 * dtypes.unit_roundoff(p.accumulate)
+    with np.errstate(all="ignore"):
+        excess = np.abs(pred) - np.abs(np.asarray(ev.expected[name], np.float64))
+        extra = np.where(np.isfinite(excess) & (excess > 0), u * excess, 0.0)
+    if not extra.any():
+        return b
+    return replace(b, values=np.broadcast_to(np.asarray(b.values, np.float64), extra.shape) + extra)
 
 
 # ------------------------------------------------------------------ conventions
