@@ -7,6 +7,7 @@ from typing import Any
 from .results import CAUTION, as_float
 from .run.shards import shard_label, shard_lines
 from .levels import level_lines
+from .diagnosis.lines import diagnosis_lines
 from .text import visible
 
 
@@ -60,7 +61,7 @@ def verdict_lines(doc: dict[str, Any]) -> list[str]:
     if names:
         first += f"; outputs not checked by declaration: {', '.join(names)}"
     lines = [first, *shard_lines(doc), *unchecked_lines(doc), *incomplete_lines(doc), *evidence_lines(doc),
-             *level_lines(doc), *numerics_lines(doc)]
+             *level_lines(doc), *numerics_lines(doc), *diagnosis_lines(doc)]
     lines.append("note: " + CAUTION)
     return lines
 

@@ -29,6 +29,7 @@ from conformance.kernel import load_kernel  # noqa: E402
 from conformance.results import CAUTION, as_float, write_json_atomic  # noqa: E402
 from conformance.run import RunOptions, run_check  # noqa: E402
 from conformance.summary import summary_table  # noqa: E402
+from conformance.diagnosis import diagnosis_lines  # noqa: E402
 
 DRAFTS = HERE / "kestrel_drafts.py"
 FUSED = HERE / "kestrel_fused.py"
@@ -78,6 +79,7 @@ def _check(spec: str, out: Path, workers: int, tier: str, report: bool, peers_en
     if doc["verdict"] != "conformant":
         print("diagnosis:")
         print("\n".join(_diagnosis(doc)))
+        print("\n".join(diagnosis_lines(doc)))  # the likely cause per failing output (conformance.diagnosis)
     if report:
         try:
             rep = importlib.import_module("conformance.report")

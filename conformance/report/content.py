@@ -16,6 +16,7 @@ from typing import Any
 from .. import dtypes as _dtypes
 from .. import ops as _ops
 from ..cases.model import STRIDE_KINDS, VALUE_KINDS, Case
+from ..diagnosis.lines import diagnosis_lines, output_diagnoses
 from ..kernel import LAYOUTS
 from ..results import BAD, CAUTION, as_float
 
@@ -268,6 +269,7 @@ class Failure:
     outputs: list[str]
     worst_budget: Any
     waived: str | None = None  # the gate's waiver reason, when one covers the case
+    diagnosis: list[str] = field(default_factory=list)  # conformance.diagnosis: one sentence per failing output
 
 
 def rerun_command(doc: dict[str, Any], case_id: str) -> str | None:
@@ -299,7 +301,8 @@ def failures(doc: dict[str, Any]) -> list[Failure]:
         if w.get("waived"):
             waived = "; ".join(str(b.get("reason", "")) for b in w.get("by", []) if b.get("reason")) or "waived"
         out.append(Failure(id=c["id"], status=c["status"], message=c.get("message", "") or "",
-                           command=rerun_command(doc, c["id"]), outputs=bad_outs, worst_budget=wb, waived=waived))
+                           command=rerun_command(doc, c["id"]), outputs=bad_outs, worst_budget=wb, waived=waived,
+                           diagnosis=[str(d.get("text", "")) for _, d in output_diagnoses(c)]))
     return out
 
 

@@ -278,12 +278,24 @@ def _failures_section(doc: dict[str, Any]) -> str:
         cmd = (f'<pre class="cmd" data-case="{_e(f.id)}">{_e(f.command)}</pre>' if f.command else
                '<p class="note">No kernel spec was recorded for this run, so there is no command line; rerun with '
                f'run_check(kernel, RunOptions(case_ids=("{_e(f.id)}",), seed={_e(doc["run"].get("seed", 0))})).</p>')
+        diag = "".join(f'<p class="diag">diagnosis: {_e(d)}</p>' for d in f.diagnosis)  # conformance.diagnosis
         out.append(f'<div class="failure"><div class="id"><code>{_e(f.id)}</code></div><div>{head}</div>'
-                   f'{cmd}{"<pre class=msg>" + _e(msg) + "</pre>" if msg else ""}</div>')
+                   f'{cmd}{"<pre class=msg>" + _e(msg) + "</pre>" if msg else ""}{diag}</div>')
     if len(fails) > MAX_FAILURES_SHOWN:
         out.append(f'<p class="note">…and {len(fails) - MAX_FAILURES_SHOWN} more; every case is in results.json.</p>')
     out.append("</section>")
     return "".join(out)
+
+
+def _diagnosis_section(doc: dict[str, Any]) -> str:
+    """The likely causes per failing output (conformance.diagnosis); empty when no output has one."""
+    lines = C.diagnosis_lines(doc)
+    if not lines:
+        return ""
+    items = "".join(f"<li>{_e(ln.strip())}</li>" for ln in lines)
+    return ('<section id="diagnosis"><h2>Diagnosis</h2><p class="note">What each failing output\'s error is '
+            "consistent with: another convention or precision, or a model of a common bug (information only; "
+            f"the verdict does not depend on it).</p><ul>{items}</ul></section>")
 
 
 def _plots_section(plots: Iterable[Plot]) -> str:
@@ -362,6 +374,7 @@ def render_html(doc: dict[str, Any], plots: Iterable[Plot], peers: dict[str, Any
         _summary_table(doc), _levels_table(doc), _numerics_tables(doc), "</section>",
         _peers_section(doc, peers, peers_note),
         _failures_section(doc),
+        _diagnosis_section(doc),
         _plots_section(plots),
         '<section id="kernel"><h2>Kernel and its declaration</h2>', _facts(C.kernel_facts(doc)), "</section>",
         '<section id="environment"><h2>Environment and run</h2>', _facts(C.environment_facts(doc, peers)),

@@ -163,6 +163,7 @@ def _failures(doc: dict[str, Any]) -> list[str]:
         first = f.message.splitlines()[0] if f.message.strip() else ""
         out.append(f"- {_code(f.id)} — {md(f.status.replace('_', ' '))}" + (f": {md(first)}" if first else "")
                    + (f" (waived by the gate: {md(f.waived)})" if f.waived else ""))
+        out += [f"  - diagnosis: {md(d)}" for d in f.diagnosis]  # conformance.diagnosis
         if f.command:
             out += ["", "  ```sh", f"  {md_block(f.command)}", "  ```"]
     if not doc.get("run", {}).get("spec"):
@@ -173,6 +174,16 @@ def _failures(doc: dict[str, Any]) -> list[str]:
         out.append(f"- …and {len(fails) - MAX_FAILURES_LISTED} more (see report.html or results.json).")
     out += ["", "</details>"]
     return out
+
+
+def _diagnosis(doc: dict[str, Any]) -> list[str]:
+    """The likely causes per failing output (conformance.diagnosis); nothing when no output has one."""
+    lines = C.diagnosis_lines(doc)
+    if not lines:
+        return []
+    return ["", "### Diagnosis", "", "What each failing output's error is consistent with: another convention or "
+            "precision, or a model of a common bug (information only; the verdict does not depend on it).", "",
+            *[("  " if ln.startswith("  ") else "") + f"- {md(ln.strip())}" for ln in lines]]
 
 
 def _caution(doc: dict[str, Any]) -> list[str]:
@@ -203,6 +214,7 @@ def render_markdown(doc: dict[str, Any], peers: dict[str, Any] | None = None, pe
     lines += _summary(doc)
     lines += _peers(doc, peers, peers_note)
     lines += _failures(doc)
+    lines += _diagnosis(doc)
     lines += _caution(doc)
     env = doc.get("environment", {})
     vers = ", ".join(f"{n} {env[m]}" for m, n in (("refnorm", "refnorm"), ("python", "Python"), ("numpy", "NumPy"),

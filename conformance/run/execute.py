@@ -30,6 +30,11 @@ __all__ = ["execute_case", "skip_reason", "KernelCallError", "describe_exception
            "oracle_expected", "case_bounds", "judged", "given_saved"]
 
 
+#: The per-case timeout of the worker process running the case (set by conformance.run.pool; None in
+#: process): a failed case's diagnosis stops starting hypotheses at 80% of it.
+CASE_TIMEOUT_S: float | None = None
+
+
 class KernelCallError(Exception):
     """The kernel raised, or returned something that does not match its declaration."""
 
@@ -346,5 +351,17 @@ def _execute(kernel: Kernel, case: Case, seed: int,
         results.append(r)
     if kernel.quantization is not None and case.out:
         results += quantized.check_outputs(kernel, case, prec, conv, inp64, fwd, raw)
-    return judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
-                  oracle_s=oracle_s)
+    res = judged(case, results, modified, duration_s=time.perf_counter() - t0, kernel_s=kernel_s,
+                 oracle_s=oracle_s)
+    # --- diagnosis (conformance.diagnosis): only adds information to a failed case, never changes it
+    if res.status == "failed":
+        try:
+            from ..diagnosis import attach
+
+            left = None if CASE_TIMEOUT_S is None else 0.8 * CASE_TIMEOUT_S - (time.perf_counter() - t0)
+            attach(res, kernel=kernel, case=case, prec=prec, conv=conv, inp=inp, inp64=inp64, raw=raw,
+                   expected=expected, bounds=bounds, results=results, overrides=overrides, time_left_s=left)
+        except Exception:
+            pass  # attach records its own errors; this guards its import
+    # --- end diagnosis
+    return res

@@ -54,13 +54,17 @@ _STOP_WAIT = 5.0
 
 
 def _worker_main(conn: Connection, kernel: Kernel | None, spec: str | None, seed: int,
-                 overrides: Mapping[str, tuple[float, float]] | None, parent_pid: int) -> None:
+                 overrides: Mapping[str, tuple[float, float]] | None, parent_pid: int,
+                 timeout: float | None = None) -> None:
     grouped = isolation.enter_worker(parent_pid)
     # The parent reports a crash by its signal; a Python stack dump from here would only be noise.
     import faulthandler
 
     faulthandler.disable()
+    from . import execute as _execute_module
     from .execute import describe_exception, execute_case
+
+    _execute_module.CASE_TIMEOUT_S = timeout  # a failed case's diagnosis keeps within it
 
     if kernel is None:
         try:
@@ -152,7 +156,8 @@ class WorkerPool:
         parent, child = self._ctx.Pipe()
         kernel = None if self.spec else self.kernel
         p = self._ctx.Process(target=_worker_main,
-                              args=(child, kernel, self.spec, self.seed, self.overrides, os.getpid()), daemon=True)
+                              args=(child, kernel, self.spec, self.seed, self.overrides, os.getpid(), self.timeout),
+                              daemon=True)
         p.start()
         child.close()
         pidfd = _pidfd(p.pid)
