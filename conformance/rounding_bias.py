@@ -28,6 +28,7 @@ from typing import Any, Iterable
 import numpy as np
 
 from . import dtypes
+from .results import output_of
 
 __all__ = ["ALPHA", "DIRECTIONS", "element_statistics", "binomial_tail", "run_outputs", "run_bias", "flagged",
            "describe", "bias_lines"]
@@ -126,7 +127,7 @@ def run_outputs(cases: Iterable[dict[str, Any]], field: str):
         for o in c.get("outputs", []):
             st = o.get(field) or {}
             if st:
-                yield (c["case"]["op"], c["case"]["dtype"], o["name"]), c, o, st
+                yield (c["case"]["op"], c["case"]["dtype"], output_of(o["name"])), c, o, st
 
 
 def _rows(cases: Iterable[dict[str, Any]]) -> dict[tuple[str, str, str], dict[str, Any]]:

@@ -305,3 +305,12 @@ def test_the_same_seed_draws_the_same_cases_and_another_seed_others():
     first = ids(5)
     assert len(first) == 12 and ids(5) == first
     assert ids(6) != first
+
+
+def test_a_multi_replica_kernel_is_refused_by_name(tmp_path, capsys):
+    # its cases are shard plans run as processes over a process group (docs/kernel-interface.md,
+    # "Multi-replica kernels"); the search draws one process's cases, so it says so and writes nothing
+    out = tmp_path / "o"
+    spec = f"{Path(__file__).with_name('replica_kernels.py')}:as_kernel"
+    assert main(["search", spec, "--out", str(out)]) == 2
+    assert "shard plans" in capsys.readouterr().err and (not out.exists() or not any(out.iterdir()))

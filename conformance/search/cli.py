@@ -119,6 +119,9 @@ def cmd_search(args: argparse.Namespace, argv: Sequence[str]) -> int:
     if kernel.quantization is not None:
         raise _usage(f"kernel {kernel.name!r} declares a quantized y: the search covers unquantized outputs only; "
                      "check it with refnorm check")
+    if ops.get(kernel.op).replicas:
+        raise _usage(f"kernel {kernel.name!r} is of op {kernel.op}, whose cases are shard plans run as processes "
+                     "over a process group: the search draws one process's cases; check it with refnorm check")
     dtype = args.dtype or kernel.dtypes[0]
     if dtype not in kernel.dtypes:
         raise _usage(f"--dtype {dtype}: kernel {kernel.name!r} declares only {', '.join(kernel.dtypes)}")
