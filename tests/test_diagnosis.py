@@ -395,3 +395,15 @@ def test_a_diagnosis_keeps_within_the_cases_time(monkeypatch):
     d = _first_cause(res, "running_var")
     assert res.status == "failed" and d["cause"] is None and d["tried"] == 0 and d["not_tried"]
     assert "not tried: the diagnosis's time limit" in d["text"]
+
+
+def test_a_failure_under_a_fixed_tolerance_is_not_diagnosed_and_says_why():
+    # A fixed atol + rtol |expected| (numpy.testing.assert_allclose's form) can fail a correct result: the
+    # explanations are ranked by derived bounds, so such an output gets a stated absence, not a cause.
+    bug = sb.BUGS["eps_outside_sqrt"]
+    case = _cases(bug.op, bug.storage, SEEDED["eps_outside_sqrt"][2])[0]
+    res = execute_case(bug.correct, case, 0, overrides={"y": (0.0, 0.0)})
+    y = next(o for o in res.outputs if o["name"] == "y")
+    assert res.status == "failed" and not y["passed"]
+    assert y["diagnosis"]["text"].startswith("no diagnosis of y: judged under a fixed tolerance")
+    assert "cause" not in y["diagnosis"]

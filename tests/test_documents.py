@@ -17,15 +17,18 @@ takes a few milliseconds):
   ===================================================  =====  ===========
   test                                                 count  CPU time
   ===================================================  =====  ===========
-  test_generated_valid_documents_render                  500  ~37 s
-  test_generated_hostile_documents_are_refused_or_shown  500  ~19 s
-  test_generated_peers_files                             200  ~18 s
+  test_generated_valid_documents_render                  300  ~56 s
+  test_generated_hostile_documents_are_refused_or_shown  500  ~62 s
+  test_generated_peers_files                             200  ~46 s
   test_generated_documents_on_the_command_line            60  ~5 s
   test_generated_documents_plots (test_hostile_writers)   16  ~6 s
   ===================================================  =====  ===========
 
-1,276 generated documents in all, zero tracebacks, about 85 s of CPU (some 45 s of wall time under
-`make test`'s two workers).
+1,076 generated documents in all, zero tracebacks. The counts were 500, 500 and 200 until the schema
+grew the diagnosis and run-level numerics sections (issue 11): every writer then renders more per
+document, and those three tests took 94, 62 and 46 s of wall time in `make test`; the first was
+cut to keep `make test` within its 20 minutes (the others keep theirs: with 300 hostile documents one
+mutation kind was sometimes never drawn, and the peers test asserts each outcome's share). Times above: scaled from those measurements, not re-measured.
 """
 
 from __future__ import annotations
@@ -52,7 +55,7 @@ KERNELS = Path(__file__).with_name("gate_kernels.py")
 jsonschema = pytest.importorskip("jsonschema")
 
 #: Counts of generated documents per test (the module docstring's table).
-N_VALID, N_HOSTILE, N_PEERS, N_CLI = 500, 500, 200, 60
+N_VALID, N_HOSTILE, N_PEERS, N_CLI = 300, 500, 200, 60
 MAX_CLI_REPORTS = 4
 
 

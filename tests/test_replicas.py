@@ -163,7 +163,7 @@ def test_local_gradients_declared_reduced_fail_on_dweight():
 
 
 def test_wrong_shard_shape_costs_the_case():
-    res = _run("WrongShardShape", CASES[0])
+    res = _run("WrongShardShape", CASES[1])
     assert res.status == "failed"
     assert "replica 1: y: shape mismatch: actual (4, 3, 4, 4), expected (3, 3, 4, 4)" in res.message
 
