@@ -10,7 +10,7 @@ over e != 0. The failure message follows numpy.testing's wording.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -63,7 +63,7 @@ class OutputResult:
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready: tuples as lists, non-finite floats as "inf"/"-inf"/"nan"."""
-        d = asdict(self)
+        d = {k: _copied(getattr(self, k)) for k in self.__dataclass_fields__}  # asdict's deep copy, without its cost
         d["shape"] = list(self.shape)
         d["worst_index"] = list(self.worst_index)
         for k in ("max_abs", "max_rel", "budget_used", "worst_actual", "worst_expected", "worst_bound"):
@@ -81,26 +81,51 @@ class OutputResult:
         return cls(**kw)
 
 
-def ulp_histogram(ulps: np.ndarray) -> dict[str, int]:
-    """Counts of ULP distances in bins "0", "1", "2-3", "4-7", "8-15", ... (powers of two)."""
+def _copied(v: Any) -> Any:
+    """A copy of the containers (dicts, lists, tuples) of a field's value; leaves are shared."""
+    if isinstance(v, dict):
+        return {k: _copied(x) for k, x in v.items()}
+    if isinstance(v, list):
+        return [_copied(x) for x in v]
+    if isinstance(v, tuple):
+        return tuple(_copied(x) for x in v)
+    return v
+
+
+def ulp_histogram(ulps: np.ndarray, top: int | None = None) -> dict[str, int]:
+    """Counts of ULP distances in bins "0", "1", "2-3", "4-7", "8-15", ... (powers of two); negative
+    distances (NaN positions) are left out. ``top``: the caller knows every distance is in [0, top]."""
     u = np.asarray(ulps, dtype=np.int64).ravel()
-    u = u[u >= 0]
-    hist: dict[str, int] = {}
     if u.size == 0:
-        return hist
+        return {}
+    if top is not None and 0 <= top < 2**53:
+        # Every distance is exactly a float64, whose biased exponent field is 1023 + floor(log2 u) for
+        # u >= 1 and 0 for u = 0 (IEEE 754-2019 §3.4, binary64: 11 exponent bits, bias 1023): one count
+        # per binade from the bits.
+        f = u.astype(np.float64)
+        counts = np.bincount(np.right_shift(f.view(np.int64), 52, out=f.view(np.int64)))
+        return _binned(int(counts[0]), counts[1023:])
+    u = u[u >= 0]
     z = int(np.count_nonzero(u == 0))
-    if z:
-        hist["0"] = z
     pos = u[u > 0]
+    counts = np.zeros(0, dtype=np.int64)
     if pos.size:
         # floor(log2(pos)) from the binary exponent: pos = m 2^e with m in [0.5, 1) (numpy.frexp).
         k = np.frexp(pos.astype(np.float64))[1].astype(np.int64) - 1
         # float64 rounding of an int64 near 2^k may carry it up one binade: correct it exactly.
         k = np.where((np.int64(1) << k) > pos, k - 1, k)
         counts = np.bincount(k)
-        for b in np.flatnonzero(counts):
-            lo, hi = 1 << int(b), (1 << (int(b) + 1)) - 1
-            hist[str(lo) if lo == hi else f"{lo}-{hi}"] = int(counts[b])
+    return _binned(z, counts)
+
+
+def _binned(zeros: int, counts: np.ndarray) -> dict[str, int]:
+    """{"0": zeros, "1": counts[0], "2-3": counts[1], ...} without the empty bins."""
+    hist: dict[str, int] = {}
+    if zeros:
+        hist["0"] = zeros
+    for b in np.flatnonzero(counts):
+        lo, hi = 1 << int(b), (1 << (int(b) + 1)) - 1
+        hist[str(lo) if lo == hi else f"{lo}-{hi}"] = int(counts[b])
     return hist
 
 
@@ -201,7 +226,12 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
     if bound.accept:
         exp, b, accepted = _accept(a, exp, b, bound.accept)
     n = int(exp.size)
-    finite = bool(np.isfinite(a).all() and np.isfinite(exp).all())
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        err = np.asarray(np.subtract(a, exp))
+        np.abs(err, out=err)
+    # err is finite only where both are: Inf - x and NaN - x are not (an overflowing difference of two
+    # finite values also lands in the general branch, which handles every element)
+    finite = bool(np.isfinite(err).all())
     if finite:  # the common case: no class masks, fewer passes over memory
         nan_mis = inf_mis = np.zeros((), dtype=bool)
         both = np.ones((), dtype=bool)
@@ -216,8 +246,6 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
     any_both = n > 0 and bool(both.any())
 
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        err = np.asarray(np.subtract(a, exp))
-        np.abs(err, out=err)
         if not finite:
             err[~both] = 0.0
         # max relative error over expected != 0 (err / 0 gives inf or NaN there: masked out)
@@ -229,25 +257,26 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
             # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
             np.copyto(ratio, np.where(err > 0, np.inf, 0.0), where=~(b > 0))
     over = ratio > 1.0
-    mism = over | nan_mis | inf_mis
+    mism = over if finite else over | nan_mis | inf_mis
     k = int(np.count_nonzero(mism))
 
     want_ulps = ulps
     if not want_ulps:
         ulps = np.zeros((), dtype=np.int64)
     elif finite:
-        ulps = dtypes.ulp_distance(act, exp, dtype)
+        ulps = dtypes.ulp_distance(act, exp, dtype, finite=True)
     else:
         ulps = dtypes.ulp_distance(np.where(both, a, 0.0), np.where(both, exp, 0.0), dtype)
         ulps = np.where(both, ulps, -1)
     max_ulp = int(ulps.max()) if any_both else 0
     max_abs = float(err.max()) if n else 0.0
-    budget = float(ratio.max()) if any_both else 0.0
+    top = int(np.argmax(ratio)) if any_both else 0  # argmax finds a NaN first, as max returns it
+    budget = float(ratio.reshape(-1)[top]) if any_both else 0.0
     if n_nan or n_inf:
         budget = float("inf")
 
     if any_both and budget > 0:
-        wi = np.unravel_index(int(np.argmax(ratio)), exp.shape)
+        wi = np.unravel_index(top, exp.shape)
     elif k:
         wi = np.unravel_index(int(np.argmax(np.broadcast_to(mism, exp.shape))), exp.shape)
     elif n:
@@ -264,7 +293,7 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
     res = OutputResult(name=name, dtype=dtype, shape=tuple(exp.shape), n=n, mismatched=k, max_abs=max_abs,
                        max_rel=max_rel, max_ulp=max_ulp, budget_used=budget, worst_index=wi, worst_actual=w_act,
                        worst_expected=w_exp, worst_bound=w_b, nan_mismatch=n_nan,
-                       inf_mismatch=n_inf, ulp_hist=ulp_histogram(ulps) if want_ulps else {},
+                       inf_mismatch=n_inf, ulp_hist=ulp_histogram(ulps, max_ulp if finite else None) if want_ulps else {},
                        bound=bound.summary(), passed=k == 0, message="", accepted=accepted)
     if res.passed and bound.kind == "derived":
         res.inconclusive = uninformative(exp, b, float(bound.terms.get("reference_scale", 0.0)),

@@ -105,18 +105,22 @@ def _ordinal(a: np.ndarray) -> np.ndarray:
     return np.where(i < 0, t(np.iinfo(t).min) - i, i)
 
 
-def ulp_distance(a: np.ndarray, b: np.ndarray, name: str) -> np.ndarray:
+def ulp_distance(a: np.ndarray, b: np.ndarray, name: str, *, finite: bool = False) -> np.ndarray:
     """Number of representable values of format ``name`` between a and b, both first rounded to it.
 
     0 means equal after rounding; NaN positions give -1 (no distance is defined).
     The distance counts steps along the format's ordered values (IEEE 754-2019 §2.1's
-    ULP as the gap between consecutive values), across zero too.
+    ULP as the gap between consecutive values), across zero too. ``finite``: the caller knows
+    a and b hold no NaN (rounding cannot make one), so the NaN masks are skipped.
     """
     dt = dtype_of(name)
-    ra = np.asarray(a).astype(dt)
-    rb = np.asarray(b).astype(dt)
+    ra = np.asarray(a).astype(dt, copy=False)
+    rb = np.asarray(b).astype(dt, copy=False)
     ia = _ordinal(np.ascontiguousarray(ra))
     ib = _ordinal(np.ascontiguousarray(rb))
-    d = np.abs(np.subtract(ia, ib, dtype=np.int64))
+    d = np.subtract(ia, ib, dtype=np.int64)
+    np.abs(d, out=d)
+    if finite:
+        return d
     nan = np.isnan(ra) | np.isnan(rb)
     return np.where(nan, -1, d)

@@ -46,13 +46,20 @@ def case_statistics(err: np.ndarray, expected: np.ndarray, bound: np.ndarray, dt
     er = np.asarray(err, dtype=np.float64)
     u_f = dtypes.unit_roundoff(dtype)
     with np.errstate(all="ignore"):
-        fin = np.isfinite(e) & np.isfinite(b) & np.isfinite(er)
-        room = b - u_f * e
-        over = er - u_f * e
-        use = fin & (room > 0)
-        r = np.where(use & (over > 0), over / np.where(use, room, 1.0), 0.0)
+        ue = u_f * e
+        room = b - ue
+        over = np.subtract(er, ue, out=ue)
+        if np.isfinite(room).all() and np.isfinite(over).all():  # e, b and err finite: no masks to build
+            beyond = over > 0
+            use = beyond & (room > 0)
+            r = np.divide(over, room, out=np.zeros_like(over), where=use)
+        else:
+            fin = np.isfinite(e) & np.isfinite(b) & np.isfinite(er)
+            beyond = fin & (over > 0)
+            use = fin & (room > 0)
+            r = np.where(use & (over > 0), over / np.where(use, room, 1.0), 0.0)
     return {"u_acc": float(u_acc), "ratio": float(r.max()) if r.size else 0.0, "scale": float(scale),
-            "beyond": int(np.count_nonzero(fin & (over > 0)))}
+            "beyond": int(np.count_nonzero(beyond))}
 
 
 def _bits(u: float) -> float:

@@ -11,7 +11,7 @@ import math
 import os
 import platform
 import sys
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, is_dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterable
@@ -56,7 +56,9 @@ class CaseResult:
         return max(vals) if vals else 0.0
 
     def to_dict(self) -> dict[str, Any]:
-        return _jsonable(asdict(self))
+        # _jsonable copies every container, so the fields need no deep copy first (dataclasses.asdict's
+        # deep copy cost more than the comparison of a small case)
+        return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "CaseResult":
@@ -77,6 +79,8 @@ def cap_text(text: str, limit: int = MESSAGE_LIMIT) -> str:
 
 def _jsonable(o: Any) -> Any:
     """Make floats JSON-safe: inf/nan become the strings "inf", "-inf", "nan"."""
+    if o is None or isinstance(o, (str, bool, int)):
+        return o
     if isinstance(o, float):
         if math.isnan(o):
             return "nan"
@@ -89,6 +93,8 @@ def _jsonable(o: Any) -> Any:
         return [_jsonable(v) for v in o]
     if hasattr(o, "item") and callable(o.item):  # NumPy scalars
         return _jsonable(o.item())
+    if is_dataclass(o) and not isinstance(o, type):
+        return _jsonable({k: getattr(o, k) for k in o.__dataclass_fields__})
     return o
 
 

@@ -56,6 +56,22 @@ def test_ulp_histogram_bins_are_powers_of_two():
     assert ulp_histogram(big) == {f"{2**61}-{2**62 - 1}": 1, f"{2**62}-{2**63 - 1}": 1}
 
 
+def test_ulp_histogram_with_a_known_top_bins_like_bit_length():
+    # Python's int.bit_length() is floor(log2 |x|) + 1 for x != 0 (Python Language Reference, int
+    # methods): the bin of a distance u >= 1 is [2^(b-1), 2^b - 1] with b = u.bit_length().
+    rng = np.random.default_rng(7)
+    for _ in range(50):
+        u = rng.integers(0, 2 ** int(rng.integers(1, 53)), size=int(rng.integers(1, 3000)))
+        u[rng.random(u.size) < 0.3] = 0
+        want: dict[str, int] = {}
+        for v in map(int, u):
+            lo, hi = (0, 0) if v == 0 else (1 << (v.bit_length() - 1), (1 << v.bit_length()) - 1)
+            key = str(lo) if lo == hi else f"{lo}-{hi}"
+            want[key] = want.get(key, 0) + 1
+        assert ulp_histogram(u, int(u.max())) == want
+        assert ulp_histogram(u) == want
+
+
 # =============================================================================== strictness
 def test_shape_mismatch_fails_without_broadcasting():
     e = np.zeros((2, 3))

@@ -198,6 +198,7 @@ def merge_documents(shards: Sequence[tuple[str, Mapping[str, Any]]], *, command:
         "dtypes": first["run"].get("dtypes"),
         "case_ids": first["run"].get("case_ids", []),
         "workers": first["run"].get("workers"),
+        "worker_threads": first["run"].get("worker_threads"),
         "timeout_s": first["run"].get("timeout_s"),
         "overrides": first["run"].get("overrides", {}),
         "accept_inconclusive": first["run"].get("accept_inconclusive", []),
@@ -231,8 +232,8 @@ def _shard_facts(source: str, doc: Mapping[str, Any], record: Mapping[str, Any])
     run = doc["run"]
     return {"index": record["index"], "source": source, "complete": doc["complete"],
             "cases": len(doc["cases"]), "expected_cost": record["costs"][record["index"] - 1],
-            **{k: run.get(k) for k in ("started", "finished", "duration_s", "workers", "command", "spec", "pid",
-                                       "interrupted")},
+            **{k: run.get(k) for k in ("started", "finished", "duration_s", "workers", "worker_threads", "command",
+                                       "spec", "pid", "interrupted")},
             "environment": doc["environment"]}
 
 

@@ -14,7 +14,7 @@ from ..cases.model import Case
 from ..kernel import Kernel
 from ..results import CaseResult, build_document, now_iso
 from .execute import skip_reason
-from .pool import WorkerPool
+from .pool import THREAD_VARIABLES, WorkerPool, worker_threads
 from .progress import Progress
 
 __all__ = ["RunOptions", "select_cases", "run_check"]
@@ -122,6 +122,10 @@ def run_check(kernel: Kernel, opts: RunOptions, *, spec: str | None = None,
             "dtypes": list(opts.dtypes or kernel.dtypes),
             "case_ids": list(opts.case_ids),
             "workers": opts.workers,
+            # what each worker's thread pools were sized by (conformance.run.pool.worker_threads)
+            "worker_threads": {v: os.environ.get(v, "").strip() or worker_threads(opts.workers).get(v)
+                               for v in THREAD_VARIABLES
+                               if os.environ.get(v, "").strip() or v in worker_threads(opts.workers)},
             "timeout_s": opts.timeout,
             "overrides": {k: list(v) for k, v in opts.overrides.items()},
             "accept_inconclusive": list(opts.accept_inconclusive),
