@@ -46,7 +46,7 @@ def case_statistics(err: np.ndarray, expected: np.ndarray, bound: np.ndarray, dt
     er = np.asarray(err, dtype=np.float64)
     u_f = dtypes.unit_roundoff(dtype)
     with np.errstate(all="ignore"):
-        ue = u_f * e
+        ue = np.asarray(u_f * e)  # an array (0-d for a per-tensor scale): written into below
         room = b - ue
         over = np.subtract(er, ue, out=ue)
         if np.isfinite(room).all() and np.isfinite(over).all():  # e, b and err finite: no masks to build

@@ -197,6 +197,10 @@ def test_seeded_bug_is_caught_on_its_output(bug, op):
     assert bug.fails in fails, fails
     assert bug.clean not in fails, fails
     assert set(fails) <= {"y_q", "scale"}, fails  # the statistics are untouched
+    # the hypotheses do not model quantized outputs: each failed one says so rather than staying silent
+    # (docs/diagnosis.md, "What it does not do")
+    texts = {o["diagnosis"]["text"].split(":")[0] for c in buggy["cases"] for o in c["outputs"] if not o["passed"]}
+    assert texts == {f"no diagnosis of {n}" for n in fails}, texts
     if bug.where:
         assert all(cid.endswith(tuple(f"scale={w}" for w in bug.where)) for cid in fails[bug.fails])
     # the same code without the bug passes every case the buggy one failed

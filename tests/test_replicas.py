@@ -154,6 +154,13 @@ def test_seeded_bug_is_caught_on_its_output(bug, twin, grads, corrupted, k):
     if bug in ("LocalCountRunningVar", "SkipsReduceDyXhat"):  # one step: nothing else moves
         assert bad == corrupted, bad
     assert _run(twin, CASES[k], param_grads=grads).status == "passed"
+    # no diagnosis runs for these cases, and each failed output says so rather than staying silent
+    # (a verdict is never silently incomplete: common practice of this project, docs/diagnosis.md)
+    for o in res.outputs:
+        if not o["passed"]:
+            assert o["diagnosis"]["text"].startswith(f"no diagnosis of {o['name']}: multi-replica"), o
+        else:
+            assert "diagnosis" not in o
 
 
 def test_local_gradients_declared_reduced_fail_on_dweight():

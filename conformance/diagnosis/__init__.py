@@ -27,6 +27,11 @@ from .rank import TIME_LIMIT_S, diagnose
 __all__ = ["attach", "diagnose", "diagnosis_lines", "output_diagnoses", "HYPOTHESES", "Hypothesis", "Evidence"]
 
 
+_QUANTIZED_OUTPUTS = ("y_q", "scale")
+_QUANTIZED = ("quantized outputs are judged level by level and not re-evaluated under the alternative "
+              "conventions and bug models (not implemented for them); the level counts show where they differ")
+
+
 def attach(res: Any, *, kernel, case, prec, conv, inp, inp64, raw, expected, bounds, results, overrides=None,
            time_left_s: float | None = None) -> None:
     """Add a diagnosis to every failed output of ``res`` (a CaseResult) that was compared element by element.
@@ -38,6 +43,10 @@ def attach(res: Any, *, kernel, case, prec, conv, inp, inp64, raw, expected, bou
     from ..tolerances import output_dtype
 
     failed = {r.name: r for r in results if not r.passed and r.name in expected and r.max_ulp >= 0}
+    for o in res.outputs:  # failed, but outside what the hypotheses model: said, not left blank
+        if not o["passed"] and o["name"] not in failed:
+            o["diagnosis"] = {"text": f"no diagnosis of {o['name']}: " + (
+                _QUANTIZED if o["name"] in _QUANTIZED_OUTPUTS else "not compared element by element")}
     # Under a fixed tolerance (--tolerance, a profile's tolerances) a failure may be the tolerance's, not
     # the kernel's: the explanations are ranked by budgets of derived bounds, so those outputs are left
     # undiagnosed, and say so.
