@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from . import dtypes
+from . import blockwise, dtypes
 from .evidence import uninformative
 from .tolerances.bound import Accept, Bound, json_number
 
@@ -220,56 +220,64 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
         return _failed(name, dtype, exp, bound,
                        f"dtype mismatch: actual {act.dtype}, declared {dtype} (no casting)", act.shape)
 
-    a = np.asarray(act.astype(np.float64))
     b = np.broadcast_to(np.asarray(bound.values, dtype=np.float64), exp.shape)
-    accepted: dict[str, int] = {}
-    if bound.accept:
-        exp, b, accepted = _accept(a, exp, b, bound.accept)
     n = int(exp.size)
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        err = np.asarray(np.subtract(a, exp))
-        np.abs(err, out=err)
-    # err is finite only where both are: Inf - x and NaN - x are not (an overflowing difference of two
-    # finite values also lands in the general branch, which handles every element)
-    finite = bool(np.isfinite(err).all())
-    if finite:  # the common case: no class masks, fewer passes over memory
-        nan_mis = inf_mis = np.zeros((), dtype=bool)
+    want_ulps = ulps
+    accepted: dict[str, int] = {}
+    fast = None if bound.accept or not n else _finite_pass(act, exp, b, dtype, want_ulps)
+    if fast is not None:  # the common case: every error finite, no accepted alternative, no class masks
+        a, err, ratio, ulps, max_rel, k, max_abs, max_ulp = fast
+        finite, any_both = True, True
+        nan_mis = inf_mis = mism = np.zeros((), dtype=bool)
         both = np.ones((), dtype=bool)
         n_nan = n_inf = 0
     else:
-        a_nan, e_nan = np.isnan(a), np.isnan(exp)
-        a_inf, e_inf = np.isinf(a), np.isinf(exp)
-        nan_mis = a_nan != e_nan
-        inf_mis = ~nan_mis & ~a_nan & ((a_inf != e_inf) | (a_inf & e_inf & (np.sign(a) != np.sign(exp))))
-        both = np.isfinite(a) & np.isfinite(exp)
-        n_nan, n_inf = int(np.count_nonzero(nan_mis)), int(np.count_nonzero(inf_mis))
-    any_both = n > 0 and bool(both.any())
+        a = np.asarray(act.astype(np.float64))
+        if bound.accept:
+            exp, b, accepted = _accept(a, exp, b, bound.accept)
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            err = np.asarray(np.subtract(a, exp))
+            np.abs(err, out=err)
+        # err is finite only where both are: Inf - x and NaN - x are not (an overflowing difference of two
+        # finite values also lands in the general branch, which handles every element)
+        finite = bool(np.isfinite(err).all())
+        if finite:  # accepted alternatives, all finite: no class masks
+            nan_mis = inf_mis = np.zeros((), dtype=bool)
+            both = np.ones((), dtype=bool)
+            n_nan = n_inf = 0
+        else:
+            a_nan, e_nan = np.isnan(a), np.isnan(exp)
+            a_inf, e_inf = np.isinf(a), np.isinf(exp)
+            nan_mis = a_nan != e_nan
+            inf_mis = ~nan_mis & ~a_nan & ((a_inf != e_inf) | (a_inf & e_inf & (np.sign(a) != np.sign(exp))))
+            both = np.isfinite(a) & np.isfinite(exp)
+            n_nan, n_inf = int(np.count_nonzero(nan_mis)), int(np.count_nonzero(inf_mis))
+        any_both = n > 0 and bool(both.any())
 
-    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        if not finite:
-            err[~both] = 0.0
-        # max relative error over expected != 0 (err / 0 gives inf or NaN there: masked out)
-        tmp = np.asarray(np.divide(err, exp))
-        np.abs(tmp, out=tmp)
-        max_rel = float(np.max(tmp, where=exp != 0, initial=0.0)) if n else 0.0
-        ratio = np.divide(err, b, out=tmp)
-        if not (b > 0).all():
-            # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
-            np.copyto(ratio, np.where(err > 0, np.inf, 0.0), where=~(b > 0))
-    over = ratio > 1.0
-    mism = over if finite else over | nan_mis | inf_mis
-    k = int(np.count_nonzero(mism))
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            if not finite:
+                err[~both] = 0.0
+            # max relative error over expected != 0 (err / 0 gives inf or NaN there: masked out)
+            tmp = np.asarray(np.divide(err, exp))
+            np.abs(tmp, out=tmp)
+            max_rel = float(np.max(tmp, where=exp != 0, initial=0.0)) if n else 0.0
+            ratio = np.divide(err, b, out=tmp)
+            if not (b > 0).all():
+                # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
+                np.copyto(ratio, np.where(err > 0, np.inf, 0.0), where=~(b > 0))
+        over = ratio > 1.0
+        mism = over if finite else over | nan_mis | inf_mis
+        k = int(np.count_nonzero(mism))
 
-    want_ulps = ulps
-    if not want_ulps:
-        ulps = np.zeros((), dtype=np.int64)
-    elif finite:
-        ulps = dtypes.ulp_distance(act, exp, dtype, finite=True)
-    else:
-        ulps = dtypes.ulp_distance(np.where(both, a, 0.0), np.where(both, exp, 0.0), dtype)
-        ulps = np.where(both, ulps, -1)
-    max_ulp = int(ulps.max()) if any_both else 0
-    max_abs = float(err.max()) if n else 0.0
+        if not want_ulps:
+            ulps = np.zeros((), dtype=np.int64)
+        elif finite:
+            ulps = dtypes.ulp_distance(act, exp, dtype, finite=True)
+        else:
+            ulps = dtypes.ulp_distance(np.where(both, a, 0.0), np.where(both, exp, 0.0), dtype)
+            ulps = np.where(both, ulps, -1)
+        max_ulp = int(ulps.max()) if any_both else 0
+        max_abs = float(err.max()) if n else 0.0
     top = int(np.argmax(ratio)) if any_both else 0  # argmax finds a NaN first, as max returns it
     budget = float(ratio.reshape(-1)[top]) if any_both else 0.0
     if n_nan or n_inf:
@@ -303,6 +311,41 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
         _numerics(res, a, exp, b, err, bound, dtype, both)
     res.message = _message(res, bound) if want_ulps else ""
     return res
+
+
+def _finite_pass(act: np.ndarray, exp: np.ndarray, b: np.ndarray, dtype: str, ulps: bool):
+    """The comparison's elementwise passes block by block, in cache (conformance.blockwise), for an
+    output whose errors are all finite: (a, err, ratio, ulps, max_rel, mismatched, max_abs, max_ulp)
+    with the values of the whole-array passes, or None when some error is not finite (the general
+    path then judges the classes). The maxima and counts of blocks are exact."""
+    shape = exp.shape
+    a, err, ratio = np.empty(shape), np.empty(shape), np.empty(shape)
+    u = np.empty(shape, dtype=np.int64) if ulps else np.zeros((), dtype=np.int64)
+    max_rel, k, max_abs, max_ulp = 0.0, 0, 0.0, 0
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        for idx in blockwise.block_slices(shape):
+            sl = idx if idx else ...
+            ab, er, t, eb = a[sl], err[sl], ratio[sl], exp[sl]
+            bb = b[sl]
+            np.copyto(ab, act[sl], casting="unsafe")  # exact: every format widens into float64
+            np.subtract(ab, eb, out=er)
+            np.abs(er, out=er)
+            if not np.isfinite(er).all():
+                return None
+            np.divide(er, eb, out=t)
+            np.abs(t, out=t)
+            max_rel = max(max_rel, float(np.max(t, where=eb != 0, initial=0.0)))
+            np.divide(er, bb, out=t)
+            if not (bb > 0).all():
+                # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
+                np.copyto(t, np.where(er > 0, np.inf, 0.0), where=~(bb > 0))
+            k += int(np.count_nonzero(t > 1.0))
+            max_abs = max(max_abs, float(er.max()))
+            if ulps:
+                ub = u[sl]
+                ub[...] = dtypes.ulp_distance(act[sl], eb, dtype, finite=True)
+                max_ulp = max(max_ulp, int(ub.max()))
+    return a, err, ratio, u, max_rel, k, max_abs, max_ulp
 
 
 def _numerics(res: OutputResult, a: np.ndarray, exp: np.ndarray, b: np.ndarray, err: np.ndarray, bound: Bound,

@@ -101,8 +101,11 @@ def _ordinal(a: np.ndarray) -> np.ndarray:
     size = a.dtype.itemsize
     t = _INT[size]
     i = a.view(t)
-    # In the format's own integer width: MIN - i cannot overflow for i in [MIN, -1].
-    return np.where(i < 0, t(np.iinfo(t).min) - i, i)
+    # MIN - i for i < 0 without np.where (3x the cost): s = i >> (bits - 1) is -1 for i < 0, else 0;
+    # i ^ (s & MAX) flips the 31 (63, 15, 7) magnitude bits of a negative i, giving -1 - m for i = MIN + m,
+    # and subtracting s adds the 1: -m = MIN - i. In the format's own integer width: nothing overflows.
+    sign = np.right_shift(i, 8 * size - 1)
+    return (i ^ (sign & t(np.iinfo(t).max))) - sign
 
 
 def ulp_distance(a: np.ndarray, b: np.ndarray, name: str, *, finite: bool = False) -> np.ndarray:
@@ -113,14 +116,20 @@ def ulp_distance(a: np.ndarray, b: np.ndarray, name: str, *, finite: bool = Fals
     ULP as the gap between consecutive values), across zero too. ``finite``: the caller knows
     a and b hold no NaN (rounding cannot make one), so the NaN masks are skipped.
     """
+    from . import blockwise
+
     dt = dtype_of(name)
-    ra = np.asarray(a).astype(dt, copy=False)
-    rb = np.asarray(b).astype(dt, copy=False)
-    ia = _ordinal(np.ascontiguousarray(ra))
-    ib = _ordinal(np.ascontiguousarray(rb))
-    d = np.subtract(ia, ib, dtype=np.int64)
-    np.abs(d, out=d)
-    if finite:
-        return d
-    nan = np.isnan(ra) | np.isnan(rb)
-    return np.where(nan, -1, d)
+    a, b = np.asarray(a), np.asarray(b)
+
+    def formula(out, a, b):
+        ra = a.astype(dt, copy=False)
+        rb = b.astype(dt, copy=False)
+        ia = _ordinal(ra if ra.flags.c_contiguous else np.ascontiguousarray(ra))  # .view needs contiguity
+        ib = _ordinal(rb if rb.flags.c_contiguous else np.ascontiguousarray(rb))
+        np.subtract(ia, ib, out=out, dtype=np.int64)
+        np.abs(out, out=out)
+        if not finite:
+            out[np.isnan(ra) | np.isnan(rb)] = -1
+
+    # Elementwise: block by block in cache, the same integers whatever the blocks (blockwise.py).
+    return blockwise.evaluate(np.broadcast_shapes(a.shape, b.shape), formula, dtype=np.int64, a=a, b=b)[0]

@@ -28,7 +28,7 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from . import dtypes
+from . import blockwise, dtypes
 from .rounding_bias import run_outputs
 
 __all__ = ["case_statistics", "run_precision", "precision_lines", "describe"]
@@ -41,12 +41,11 @@ def case_statistics(err: np.ndarray, expected: np.ndarray, bound: np.ndarray, dt
     left out. ``scale``: the bound's multiple of its model's one-sigma error (lam, or 1)."""
     if not u_acc or not (u_acc > 0):
         return {}
-    e = np.abs(np.asarray(expected, dtype=np.float64))
-    b = np.broadcast_to(np.asarray(bound, dtype=np.float64), e.shape)
-    er = np.asarray(err, dtype=np.float64)
+    e = np.asarray(expected, dtype=np.float64)
     u_f = dtypes.unit_roundoff(dtype)
-    with np.errstate(all="ignore"):
-        ue = np.asarray(u_f * e)  # an array (0-d for a per-tensor scale): written into below
+
+    def formula(out, e, b, er):
+        ue = np.asarray(u_f * np.abs(e))  # an array (0-d for a per-tensor scale): written into below
         room = b - ue
         over = np.subtract(er, ue, out=ue)
         if np.isfinite(room).all() and np.isfinite(over).all():  # e, b and err finite: no masks to build
@@ -58,8 +57,14 @@ def case_statistics(err: np.ndarray, expected: np.ndarray, bound: np.ndarray, dt
             beyond = fin & (over > 0)
             use = fin & (room > 0)
             r = np.where(use & (over > 0), over / np.where(use, room, 1.0), 0.0)
-    return {"u_acc": float(u_acc), "ratio": float(r.max()) if r.size else 0.0, "scale": float(scale),
-            "beyond": int(np.count_nonzero(beyond))}
+        return None, (float(r.max()) if r.size else 0.0, int(np.count_nonzero(beyond)))
+
+    # Elementwise, then a maximum and a count: the same numbers whatever the blocks (blockwise.py).
+    with np.errstate(all="ignore"):
+        _, parts = blockwise.evaluate(e.shape, formula, e=e, b=np.asarray(bound, dtype=np.float64),
+                                      er=np.asarray(err, dtype=np.float64))
+    return {"u_acc": float(u_acc), "ratio": max((q for q, _ in parts), default=0.0) if e.size else 0.0,
+            "scale": float(scale), "beyond": sum(k for _, k in parts)}
 
 
 def _bits(u: float) -> float:

@@ -58,7 +58,7 @@ class CaseResult:
     def to_dict(self) -> dict[str, Any]:
         # _jsonable copies every container, so the fields need no deep copy first (dataclasses.asdict's
         # deep copy cost more than the comparison of a small case)
-        return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
+        return _jsonable(self)
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "CaseResult":

@@ -97,6 +97,27 @@ def test_a_users_thread_setting_reaches_the_workers_unchanged(tmp_path, monkeypa
     assert os.environ["OMP_NUM_THREADS"] == "3"
 
 
+@pytest.mark.parametrize("value", ["many", "0", "-2", "4,2", "1e3"])
+def test_a_malformed_user_setting_is_left_alone_and_costs_nothing(tmp_path, monkeypatch, value):
+    # Hostile input: thread variables that are not one positive integer (the OpenMP API specification's
+    # OMP_NUM_THREADS takes a positive integer or a comma-separated list of them, one per nesting level;
+    # from memory, section not cited). It is the user's: passed on
+    # unchanged, never handed to torch.set_num_threads, and every case still runs.
+    torch = pytest.importorskip("torch")
+    for v in THREAD_VARIABLES:
+        monkeypatch.delenv(v, raising=False)
+    monkeypatch.setenv("OMP_NUM_THREADS", value)
+    assert "OMP_NUM_THREADS" not in worker_threads(2)
+    log = tmp_path / "seen.jsonl"
+    doc = run_check(_reporting_kernel(log), RunOptions(case_ids=IDS, workers=2), quiet=True)
+    assert doc["verdict"] == "conformant", [c["message"] for c in doc["cases"]]
+    seen = _seen(log)
+    assert len(seen) == len(IDS) and {s["OMP_NUM_THREADS"] for s in seen} == {value}
+    assert all(isinstance(s["torch"], int) and s["torch"] >= 1 for s in seen)
+    assert doc["run"]["worker_threads"]["OMP_NUM_THREADS"] == value
+    assert os.environ["OMP_NUM_THREADS"] == value and torch.get_num_threads() >= 1
+
+
 def test_one_worker_sets_nothing(tmp_path, monkeypatch):
     for v in THREAD_VARIABLES:
         monkeypatch.delenv(v, raising=False)

@@ -39,7 +39,7 @@ from typing import Callable
 
 import numpy as np
 
-from .. import dtypes, ops
+from .. import blockwise, dtypes, ops
 from ..cases.model import Case
 from ..kernel import Conventions, Precision
 from . import ranges
@@ -299,9 +299,9 @@ def _finite_max(a: np.ndarray) -> float:
     return float(f.max()) if f.size else math.nan
 
 
-def _final(pre: np.ndarray, value: np.ndarray, u_f: float, eta_f: float) -> np.ndarray:
+def _final(pre: np.ndarray, value: np.ndarray, u_f: float, eta_f: float, out: np.ndarray | None = None) -> np.ndarray:
     """Rounding to the output format: the pre-rounding bound grows by u_f and the value adds u_f |value| + eta_f."""
-    return pre * (1.0 + u_f) + u_f * np.abs(value) + eta_f
+    return np.add(pre * (1.0 + u_f) + u_f * np.abs(value), eta_f, out=out)
 
 
 # ----------------------------------------------------------------- forward
@@ -310,39 +310,46 @@ def _y(ctx: _Context, expected: np.ndarray):
     st = ctx.stats(model=model)
     u_o = ctx.u_out("y")
     grp = ctx.grp
-    y = np.abs(grp.view(expected))
-    x = ctx.xv
-    w, b = ctx.w_abs(), ctx.b_abs()
-    dr = st.dr
-    r_up = st.r + dr
-    with np.errstate(invalid="ignore", over="ignore"):
-        d = np.abs(x - st.mu)
-        fl = (w * r_up * ctx.flushed("x") + r_up * d * ctx.flushed("weight") + ctx.flushed("bias")
-              if ctx.perturbed else 0.0)  # inputs read as zero: x moves by |x|, weight by |w|, bias by |b|
-        if ctx.train:
+    train, perturbed, folded = ctx.train, ctx.perturbed, ctx.conv.y_form == "folded"
+    u_s, eta_s, eta_a = ctx.u_s, ctx.eta_s, ctx.eta_a
+    u_cv = u_o if u_o > ctx.u_s else 0.0  # x converted to an accumulation format narrower than storage
+
+    def formula(out, e, x, mu, r, dr, b_mu, w, b, fx, fw, fb):
+        y = np.abs(e)
+        r_up = r + dr
+        d = np.abs(x - mu)
+        fl = (w * r_up * fx + r_up * d * fw + fb
+              if perturbed else 0.0)  # inputs read as zero: x moves by |x|, weight by |w|, bias by |b|
+        if train:
             # The mean's own error B_mu >= 2 u_a |mu| + gamma_n mean|x| is of the size of the folded form's
             # roundings, so training keeps one bound for both forms.
-            pre = (w * r_up * st.b_mu + w * d * dr
-                   + u_o * (3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d) + b + 2.0 * y) + 4.0 * ctx.eta_a) + fl
-            f_form, ratio = "", None
+            pre = (w * r_up * b_mu + w * d * dr
+                   + u_o * (3.0 * w * r_up * (np.abs(x) + np.abs(mu) + d) + b + 2.0 * y) + 4.0 * eta_a) + fl
+            return _final(pre, y, u_s, eta_s, out=out)
+        common = w * r_up * b_mu + w * d * dr + u_o * (b + 2.0 * y) + 4.0 * eta_a + fl
+        centred = common + u_o * 3.0 * w * r_up * (d + b_mu) + u_cv * w * r_up * np.abs(x)
+        fold = (common + u_o * 3.0 * w * r_up * (np.abs(x) + np.abs(mu) + d)
+                + u_cv * w * r_up * np.abs(x))
+        fin = np.isfinite(fold) & np.isfinite(centred) & (centred > 0)
+        ratio = float(np.max(fold[fin] / centred[fin])) if fin.any() else None
+        return _final(fold if folded else centred, y, u_s, eta_s, out=out), ratio
+
+    with np.errstate(invalid="ignore", over="ignore"):
+        flushed = [ctx.flushed(k) for k in ("x", "weight", "bias")] if perturbed else [0.0, 0.0, 0.0]
+        vals, ratios = blockwise.evaluate(
+            grp.view_shape, formula, e=grp.view(expected), x=ctx.xv, mu=st.mu, r=st.r, dr=st.dr, b_mu=st.b_mu,
+            w=ctx.w_abs(), b=ctx.b_abs(), fx=flushed[0], fw=flushed[1], fb=flushed[2])
+    if train:
+        f_form, ratio = "", None
+    else:
+        ratio = max((q for q in ratios if q is not None), default=1.0)
+        if folded:
+            f_form = (f" [folded form x scale + shift declared: its roundings of |x| scale and |mu| scale "
+                      f"allow up to {ratio:.3g} times the centred form's bound here; large where |mean| is "
+                      "large against |x - mean|]")
         else:
-            common = w * r_up * st.b_mu + w * d * dr + u_o * (b + 2.0 * y) + 4.0 * ctx.eta_a + fl
-            u_cv = u_o if u_o > ctx.u_s else 0.0  # x converted to an accumulation format narrower than storage
-            centred = common + u_o * 3.0 * w * r_up * (d + st.b_mu) + u_cv * w * r_up * np.abs(x)
-            fold = (common + u_o * 3.0 * w * r_up * (np.abs(x) + np.abs(st.mu) + d)
-                    + u_cv * w * r_up * np.abs(x))
-            fin = np.isfinite(fold) & np.isfinite(centred) & (centred > 0)
-            ratio = float(np.max(fold[fin] / centred[fin])) if fin.any() else 1.0
-            if ctx.conv.y_form == "folded":
-                pre = fold
-                f_form = (f" [folded form x scale + shift declared: its roundings of |x| scale and |mu| scale "
-                          f"allow up to {ratio:.3g} times the centred form's bound here; large where |mean| is "
-                          "large against |x - mean|]")
-            else:
-                pre = centred
-                f_form = (f" [centred form (x - mean) scale + b; a kernel that folds it into x scale + shift "
-                          f"declares y_form='folded' and may err {ratio:.3g} times more here]")
-        vals = _final(pre, y, ctx.u_s, ctx.eta_s)
+            f_form = (f" [centred form (x - mean) scale + b; a kernel that folds it into x scale + shift "
+                      f"declares y_form='folded' and may err {ratio:.3g} times more here]")
     if not ctx.center:
         f = "|w| |x| dr + u_o (3 |w| (r+dr) 2|x| + |b| + 2|y|) + final u_s |y|"
     elif ctx.train:
@@ -487,7 +494,6 @@ def _dx(ctx: _Context, expected: np.ndarray):
     grp = ctx.grp
     st = ctx.backward_stats() if ctx.train else ctx.stats()
     u_o = ctx.u_out("dx")
-    dx = np.abs(grp.view(expected))
     dy = ctx.dyv()
     g = dy if ctx.w is None else dy * ctx.w
     dr = st.dr
@@ -498,43 +504,54 @@ def _dx(ctx: _Context, expected: np.ndarray):
     fl_txt = " + flushed inputs' terms" if ctx.perturbed else ""
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         if not ctx.train:
+            dx = np.abs(grp.view(expected))
             pre = np.abs(g) * dr + 2.0 * u_o * r_up * np.abs(g) + 2.0 * ctx.eta_a + r_up * dg
             vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
             f = "|g| dr + 2 u_o (r+dr) |g| + final u_s |dx|, g = dy w" + fl_txt + "; " + ctx.stats_text(st)
             return grp.unview(vals), f, ctx.terms(st, u_o)
         gam = capped(gamma(grp.n, u_o, model, ctx.lam))
         xc = ctx.xv - st.mu
-        d = np.abs(xc)
         xhat = xc * st.r
+        gxh = g * xhat
         m1 = grp.gmean(g) if ctx.center else np.zeros_like(st.v)
-        m2 = grp.gmean(g * xhat)
-        gc = g - m1
+        m2 = grp.gmean(gxh)
         ag = grp.gmean(np.abs(g))
-        agx = grp.gmean(np.abs(g * xhat))
+        agx = grp.gmean(np.abs(gxh))
+        del gxh
         dm1 = (gam + 2.0 * u_o) * ag + u_o * np.abs(m1)
         dm2 = (gam + 4.0 * u_o) * agx + u_o * np.abs(m2)
         beta_up = st.beta + st.dbeta
-        xm2 = np.abs(xhat * m2)
-        pre = dr * (np.abs(gc) + 2.0 * (beta_up / st.r) * xm2) + st.dbeta * xm2 + beta_up * r_up * d * dm2
-        if ctx.center:
-            pre = pre + beta_up * r_up * st.b_mu * (np.abs(m2) + np.abs(xhat) * np.abs(m1)) + r_up * dm1
-            # Second order in the mean's error d: xhat moves by r d and m2 by -r d m1, so xhat m2 moves by
-            # r d m2 - r d xhat m1 - r^2 d^2 m1; the last term matters where r B_mu is not small (data of
-            # kappa ~ 64 whose saved mean is rounded to bfloat16: r B_mu ~ 0.3).
-            # (r B_mu clamped at 1e100 inside the square: beyond it gamma is GAMMA_CAP-sized, "no bound",
-            # and the first-order terms already carry that; the clamp keeps the square finite.)
-            rb = np.minimum(r_up * st.b_mu, 1e100)
-            pre = pre + beta_up * rb * rb * np.abs(m1)
-        pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
-                           + 2.0 * dx) + 6.0 * ctx.eta_a
-        if ctx.perturbed:
-            # x read as zero moves xhat by r |x| (and m2 with it); g moves by dg (and m1, m2 with it).
-            fx = ctx.flushed("x")
-            dm2_f = r_up * grp.gmean(np.abs(g) * fx) + grp.gmean(dg * np.abs(xhat))
-            pre = pre + beta_up * r_up * fx * np.abs(m2) + beta_up * np.abs(xhat) * dm2_f + r_up * dg
-            if ctx.center:
-                pre = pre + r_up * grp.gmean(dg)
-        vals = _final(pre, dx, ctx.u_s, ctx.eta_s)
+        center, perturbed, u_s, eta_s, eta_a = ctx.center, ctx.perturbed, ctx.u_s, ctx.eta_s, ctx.eta_a
+        fx = ctx.flushed("x") if perturbed else 0.0
+        # x read as zero moves xhat by r |x| (and m2 with it); g moves by dg (and m1, m2 with it).
+        dm2_f = r_up * grp.gmean(np.abs(g) * fx) + grp.gmean(dg * np.abs(xhat)) if perturbed else 0.0
+        mdg = grp.gmean(dg) if perturbed and center else 0.0
+
+        def formula(out, e, g, xc, xhat, dr, r, r_up, beta_up, dbeta, b_mu, m1, m2, dm1, dm2, fx, dg, dm2_f, mdg):
+            dx = np.abs(e)
+            d = np.abs(xc)
+            xm2 = np.abs(xhat * m2)
+            pre = dr * (np.abs(g - m1) + 2.0 * (beta_up / r) * xm2) + dbeta * xm2 + beta_up * r_up * d * dm2
+            if center:
+                pre = pre + beta_up * r_up * b_mu * (np.abs(m2) + np.abs(xhat) * np.abs(m1)) + r_up * dm1
+                # Second order in the mean's error d: xhat moves by r d and m2 by -r d m1, so xhat m2 moves by
+                # r d m2 - r d xhat m1 - r^2 d^2 m1; the last term matters where r B_mu is not small (data of
+                # kappa ~ 64 whose saved mean is rounded to bfloat16: r B_mu ~ 0.3).
+                # (r B_mu clamped at 1e100 inside the square: beyond it gamma is GAMMA_CAP-sized, "no bound",
+                # and the first-order terms already carry that; the clamp keeps the square finite.)
+                rb = np.minimum(r_up * b_mu, 1e100)
+                pre = pre + beta_up * rb * rb * np.abs(m1)
+            pre = pre + u_o * (3.0 * r_up * (np.abs(g) + np.abs(m1)) + 3.0 * beta_up * r_up * d * np.abs(m2)
+                               + 2.0 * dx) + 6.0 * eta_a
+            if perturbed:
+                pre = pre + beta_up * r_up * fx * np.abs(m2) + beta_up * np.abs(xhat) * dm2_f + r_up * dg
+                if center:
+                    pre = pre + r_up * mdg
+            return _final(pre, dx, u_s, eta_s, out=out)
+
+        vals, _ = blockwise.evaluate(grp.view_shape, formula, e=grp.view(expected), g=g, xc=xc, xhat=xhat, dr=dr,
+                                     r=st.r, r_up=r_up, beta_up=beta_up, dbeta=st.dbeta, b_mu=st.b_mu, m1=m1,
+                                     m2=m2, dm1=dm1, dm2=dm2, fx=fx, dg=dg, dm2_f=dm2_f, mdg=mdg)
     beta = "beta = r" if ctx.placement == "inside" else "beta = 1/sqrt(v)"
     if ctx.center:
         f = ("dr (|gc| + 2 (beta/r) |xhat m2|) + dbeta |xhat m2| + beta r B_mu (|m2| + |xhat| |m1|)"
@@ -577,19 +594,21 @@ def _dweight(ctx: _Context, expected: np.ndarray):
     outer = tuple(a for a in grp.param_red if a not in grp.red)
     with np.errstate(invalid="ignore", over="ignore"):
         xc = ctx.xv - st.mu
-        s_dyx = np.sum(dy * xc, axis=inner, keepdims=True) if inner else dy * xc
+        dyx = dy * xc
+        s_dyx = np.sum(dyx, axis=inner, keepdims=True) if inner else dyx
         s_dy = np.sum(dy, axis=inner, keepdims=True) if inner else dy
         per = st.dr * np.abs(s_dyx) + (st.r + st.dr) * st.b_mu * np.abs(s_dy)
         per = np.sum(np.broadcast_to(per, np.broadcast_shapes(per.shape, st.v.shape)), axis=outer, keepdims=True) \
             if outer else per
-        sxh = grp.psum(np.abs(dy * xc) * st.r)
+        np.abs(dyx, out=dyx)  # |dy (x - mu)|, for this sum and the overflow check below
+        sxh = grp.psum(dyx * st.r)
         pre = per + (gam + u_w + 2.0 * ctx.u_a) * sxh + u_w * dw + m * ctx.eta_a
         if ctx.perturbed:  # dy and x read as zero where subnormal: each term dy xhat moves by d_dy |xhat| + |dy| r d_x
             pre = pre + grp.psum(ctx.flushed("dy") * np.abs(xc) * (st.r + st.dr)
                                  + np.abs(dy) * (st.r + st.dr) * ctx.flushed("x"))
         vals = _final(pre, dw, ctx.u_p, ctx.eta_p)
     # A kernel may sum dy (x - mu) before scaling by r: whichever sum reaches beyond its declared format.
-    reach = np.maximum(sxh, grp.psum(np.abs(dy * xc)))
+    reach = np.maximum(sxh, grp.psum(dyx))
     ctx.accepts["dweight"] = ranges.sum_overflow_accepts(grp.param_out(reach), ctx.p.accumulate_for("dweight"))
 
     f = ("sum_g (dr |sum_gm dy (x-mu)| + (r+dr) B_mu |sum_gm dy|) + (gamma_m + u_w + 2u_a) sum_m |dy xhat|"
@@ -684,13 +703,20 @@ def finish_bound(name: str, e: np.ndarray, vals, formula: str, terms: dict[str, 
     if vals.shape != e.shape:
         vals = np.broadcast_to(vals, e.shape) if vals.size == 1 else vals.reshape(e.shape)
     fin = np.isfinite(e)
-    bad_b = fin & ~np.isfinite(vals)
-    vals = np.where(fin, vals, 0.0)
-    if bad_b.any():  # overflow inside the bound itself (values near float64's range): no bound
-        vals = np.where(bad_b, np.finfo(np.float64).max, vals)
-    terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
-    scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
-    terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
+    if fin.all() and np.isfinite(vals).all():  # the common case: no masks, no copies of the finite elements
+        if not vals.flags.writeable:  # a broadcast: the Bound owns its values
+            vals = vals.copy()
+        terms["nonfinite_bound_elements"] = 0.0
+        scale = float(max(np.max(e), -np.min(e))) if e.size else 0.0  # max |e|
+        terms["bound_over_scale"] = float(np.max(vals) / scale) if scale > 0 else 0.0
+    else:
+        bad_b = fin & ~np.isfinite(vals)
+        vals = np.where(fin, vals, 0.0)
+        if bad_b.any():  # overflow inside the bound itself (values near float64's range): no bound
+            vals = np.where(bad_b, np.finfo(np.float64).max, vals)
+        terms["nonfinite_bound_elements"] = float(np.count_nonzero(bad_b))
+        scale = float(np.max(np.abs(e[fin]))) if fin.any() else 0.0
+        terms["bound_over_scale"] = float(np.max(vals[fin]) / scale) if scale > 0 else 0.0
     p = precision.resolved()
     accept = tuple(accepts) + ranges.overflow_accepts(e, vals, output_dtype(name, p), p.overflow)
     if accept:
