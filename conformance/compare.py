@@ -257,14 +257,8 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
             if not finite:
                 err[~both] = 0.0
-            # max relative error over expected != 0 (err / 0 gives inf or NaN there: masked out)
-            tmp = np.asarray(np.divide(err, exp))
-            np.abs(tmp, out=tmp)
-            max_rel = float(np.max(tmp, where=exp != 0, initial=0.0)) if n else 0.0
-            ratio = np.divide(err, b, out=tmp)
-            if not (b > 0).all():
-                # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
-                np.copyto(ratio, np.where(err > 0, np.inf, 0.0), where=~(b > 0))
+            ratio = np.empty(exp.shape)
+            max_rel = _relative_and_budget(err, exp, b, ratio)
         over = ratio > 1.0
         mism = over if finite else over | nan_mis | inf_mis
         k = int(np.count_nonzero(mism))
@@ -313,6 +307,20 @@ def compare_output(name: str, actual: Any, expected: np.ndarray, bound: Bound, *
     return res
 
 
+def _relative_and_budget(err: np.ndarray, exp: np.ndarray, b: np.ndarray, out: np.ndarray) -> float:
+    """The largest |err / exp| over exp != 0 (0 for none), with err / b, the budget used per element,
+    left in ``out`` (exp's shape)."""
+    # max relative error over expected != 0 (err / 0 gives inf or NaN there: masked out)
+    np.divide(err, exp, out=out)
+    np.abs(out, out=out)
+    max_rel = float(np.max(out, where=exp != 0, initial=0.0))
+    np.divide(err, b, out=out)
+    if not (b > 0).all():
+        # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
+        np.copyto(out, np.where(err > 0, np.inf, 0.0), where=~(b > 0))
+    return max_rel
+
+
 def _finite_pass(act: np.ndarray, exp: np.ndarray, b: np.ndarray, dtype: str, ulps: bool):
     """The comparison's elementwise passes block by block, in cache (conformance.blockwise), for an
     output whose errors are all finite: (a, err, ratio, ulps, max_rel, mismatched, max_abs, max_ulp)
@@ -332,18 +340,12 @@ def _finite_pass(act: np.ndarray, exp: np.ndarray, b: np.ndarray, dtype: str, ul
             np.abs(er, out=er)
             if not np.isfinite(er).all():
                 return None
-            np.divide(er, eb, out=t)
-            np.abs(t, out=t)
-            max_rel = max(max_rel, float(np.max(t, where=eb != 0, initial=0.0)))
-            np.divide(er, bb, out=t)
-            if not (bb > 0).all():
-                # A bound that is 0, negative or NaN lets no error through; 0 / 0 is no error.
-                np.copyto(t, np.where(er > 0, np.inf, 0.0), where=~(bb > 0))
+            max_rel = max(max_rel, _relative_and_budget(er, eb, bb, t))
             k += int(np.count_nonzero(t > 1.0))
             max_abs = max(max_abs, float(er.max()))
             if ulps:
                 ub = u[sl]
-                ub[...] = dtypes.ulp_distance(act[sl], eb, dtype, finite=True)
+                dtypes.ulp_distance_into(ub, act[sl], eb, dtype, finite=True)
                 max_ulp = max(max_ulp, int(ub.max()))
     return a, err, ratio, u, max_rel, k, max_abs, max_ulp
 

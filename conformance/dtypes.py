@@ -7,6 +7,8 @@ import math
 
 import numpy as np
 
+from . import blockwise
+
 __all__ = ["FORMATS", "dtype_of", "name_of", "unit_roundoff", "round_to", "ulp_distance", "finfo", "has_infinity",
            "overflow_threshold"]
 
@@ -116,20 +118,20 @@ def ulp_distance(a: np.ndarray, b: np.ndarray, name: str, *, finite: bool = Fals
     ULP as the gap between consecutive values), across zero too. ``finite``: the caller knows
     a and b hold no NaN (rounding cannot make one), so the NaN masks are skipped.
     """
-    from . import blockwise
-
-    dt = dtype_of(name)
     a, b = np.asarray(a), np.asarray(b)
-
-    def formula(out, a, b):
-        ra = a.astype(dt, copy=False)
-        rb = b.astype(dt, copy=False)
-        ia = _ordinal(ra if ra.flags.c_contiguous else np.ascontiguousarray(ra))  # .view needs contiguity
-        ib = _ordinal(rb if rb.flags.c_contiguous else np.ascontiguousarray(rb))
-        np.subtract(ia, ib, out=out, dtype=np.int64)
-        np.abs(out, out=out)
-        if not finite:
-            out[np.isnan(ra) | np.isnan(rb)] = -1
-
     # Elementwise: block by block in cache, the same integers whatever the blocks (blockwise.py).
-    return blockwise.evaluate(np.broadcast_shapes(a.shape, b.shape), formula, dtype=np.int64, a=a, b=b)[0]
+    return blockwise.evaluate(np.broadcast_shapes(a.shape, b.shape), ulp_distance_into, dtype=np.int64,
+                              a=a, b=b, name=name, finite=finite)[0]
+
+
+def ulp_distance_into(out: np.ndarray, a: np.ndarray, b: np.ndarray, name: str, *, finite: bool = False) -> None:
+    """:func:`ulp_distance` of a and b written into the int64 array ``out`` (their broadcast shape)."""
+    dt = dtype_of(name)
+    ra = np.asarray(a).astype(dt, copy=False)
+    rb = np.asarray(b).astype(dt, copy=False)
+    ia = _ordinal(ra if ra.flags.c_contiguous else np.ascontiguousarray(ra))  # .view needs contiguity
+    ib = _ordinal(rb if rb.flags.c_contiguous else np.ascontiguousarray(rb))
+    np.subtract(ia, ib, out=out, dtype=np.int64)
+    np.abs(out, out=out)
+    if not finite:
+        out[np.isnan(ra) | np.isnan(rb)] = -1

@@ -63,7 +63,7 @@ def case_statistics(err: np.ndarray, expected: np.ndarray, bound: np.ndarray, dt
     with np.errstate(all="ignore"):
         _, parts = blockwise.evaluate(e.shape, formula, e=e, b=np.asarray(bound, dtype=np.float64),
                                       er=np.asarray(err, dtype=np.float64))
-    return {"u_acc": float(u_acc), "ratio": max((q for q, _ in parts), default=0.0) if e.size else 0.0,
+    return {"u_acc": float(u_acc), "ratio": max((q for q, _ in parts), default=0.0),
             "scale": float(scale), "beyond": sum(k for _, k in parts)}
 
 

@@ -161,3 +161,18 @@ def test_a_nan_in_the_last_block_is_still_judged_by_its_class():
     assert r.worst_index == (2, e.shape[1] - 1) and not r.passed
     err = np.abs(a32[:2].astype(np.float64) - e[:2])
     assert r.max_abs == float(err.max())
+
+
+def test_a_strided_read_only_kernel_output_is_compared_like_its_contiguous_copy():
+    # Hostile kernel return: a reversed, transposed, read-only view over many blocks (what a kernel that
+    # returns a layout view hands back). The blockwise comparison reads it through its strides: the same
+    # result as for a contiguous copy of the same values (common practice: layout must not change a verdict).
+    rng = np.random.default_rng(5)
+    e = rng.standard_normal((3 * blockwise.BLOCK // 64, 64))
+    base = (e * (1 + rng.standard_normal(e.shape) * 1e-7)).astype(np.float32)
+    view = np.ascontiguousarray(base.T[::-1]).T[:, ::-1]  # same values as base, strides (4, -4 * rows)
+    view.flags.writeable = False
+    assert np.array_equal(view, base) and not view.flags.c_contiguous
+    bound = np.full(e.shape, 2e-7)
+    got, want = _compare_many_blocks(view, e, bound), _compare_many_blocks(base.copy(), e, bound)
+    assert got.to_dict() == want.to_dict()
